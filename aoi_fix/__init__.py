@@ -1,8 +1,34 @@
 """aoi_fix: raw gaze samples to fixations, moving-AOI hits and per-trial tables.
 
-A research tool, not a diagnostic device.
+A research tool, not a diagnostic device. The public API is loaded lazily so that
+``aoi-fix --version`` starts fast.
 """
+
+from __future__ import annotations
+
+import importlib
 
 __version__ = "0.1.0"
 
-__all__ = ["__version__"]
+_EXPORTS = {
+    "load_study": "config", "study_from_dict": "config", "Study": "config",
+    "read_samples": "samples", "fill_gaps": "clean",
+    "ivt": "detect", "idt": "detect", "merge_and_discard": "detect",
+    "detect_fixations": "detect",
+    "fixations_from_file": "pipeline",
+    "AoiFixError": "errors", "InputFormatError": "errors", "ConfigError": "errors",
+    "UsageError": "errors", "NoValidSamplesError": "errors", "OutputError": "errors",
+}
+
+__all__ = ["__version__", *_EXPORTS]
+
+
+def __getattr__(name: str):
+    if name in _EXPORTS:
+        module = importlib.import_module(f".{_EXPORTS[name]}", __name__)
+        return getattr(module, name)
+    raise AttributeError(f"module 'aoi_fix' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(__all__)

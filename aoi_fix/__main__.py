@@ -1,0 +1,5 @@
+"""``python -m aoi_fix``."""
+
+from .cli import main
+
+main()

@@ -1,0 +1,86 @@
+"""The ``aoi-fix`` command line: parse arguments, call the library, map errors to exit codes.
+
+No maths here.  Exit codes: 0 success, 1 bad data (one-line message), 2 bad usage.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+
+from . import __version__
+from .errors import AoiFixError
+
+app = typer.Typer(add_completion=False, no_args_is_help=True,
+                  help="Raw gaze samples to fixations, moving-AOI hits and per-trial "
+                       "tables. A research tool, not a diagnostic device.")
+
+SET_HELP = "Override a study key, e.g. detection.velocity_threshold_deg_s=40 (repeatable)."
+FORMAT_HELP = "Table format: csv or parquet."
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"aoi-fix {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
+                                       help="Print the version and exit.")) -> None:
+    """aoi-fix: eye-tracking samples to fixations and AOI tables (research use only)."""
+
+
+def _fail(message: str, code: int) -> None:
+    typer.echo(f"aoi-fix: error: {message}", err=True)
+    raise typer.Exit(code)
+
+
+def handle_errors(fn):
+    """Turn library errors into one line on stderr and the right exit code."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except AoiFixError as e:
+            _fail(str(e).splitlines()[0] if str(e) else type(e).__name__, e.exit_code)
+        except MemoryError:
+            _fail("out of memory", 1)
+    return wrapper
+
+
+def _check_format(fmt: str) -> str:
+    if fmt not in ("csv", "parquet"):
+        raise typer.BadParameter(f"found {fmt!r}, expected csv or parquet",
+                                 param_hint="--format")
+    return fmt
+
+
+@app.command()
+@handle_errors
+def fixations(
+    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
+    out: Path = typer.Option(..., "--out", help="Fixation table to write."),
+    set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
+    fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+) -> None:
+    """Detect fixations in one recording and write the fixation table."""
+    from .pipeline import fixations_from_file
+
+    _check_format(fmt)
+    table = fixations_from_file(samples, study, overrides=set_ or (), out=out, fmt=fmt)
+    typer.echo(f"{len(table)} fixations written to {out}", err=True)
+
+
+def main() -> None:  # console-script entry point
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,162 @@
+"""Atomic writing of tables and the run manifest.
+
+Every output goes to a temporary name in its final folder and is renamed into
+place only when all outputs of the run were written: a failed run leaves no
+partial file (and no file of the run at all).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from .errors import OutputError
+
+__all__ = ["AtomicOutputs", "write_table", "sha256_file", "table_suffix", "read_table"]
+
+RESEARCH_NOTICE = ("aoi_fix is a research tool, not a diagnostic device; any clinical "
+                   "decision belongs to qualified clinicians under local rules.")
+
+
+def table_suffix(fmt: str) -> str:
+    return ".parquet" if fmt == "parquet" else ".csv"
+
+
+def sha256_file(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _to_parquet_frame(df: pd.DataFrame) -> pd.DataFrame:
+    out = df.copy()
+    for c in out.columns:
+        if c in ("aoi", "stimulus", "trial") and out[c].dtype == object or (
+                c in ("aoi", "stimulus") and pd.api.types.is_string_dtype(out[c])):
+            out[c] = out[c].astype("category")
+    return out
+
+
+def _write(df: pd.DataFrame, path: Path, fmt: str) -> None:
+    if fmt == "parquet":
+        _to_parquet_frame(df).to_parquet(path, index=False, engine="pyarrow")
+    else:
+        # 6 decimals (1 ns in ms) keeps CSV free of binary-float noise
+        rounded = df.copy()
+        for c in rounded.columns:
+            if pd.api.types.is_float_dtype(rounded[c]):
+                rounded[c] = rounded[c].round(6)
+        rounded.to_csv(path, index=False, na_rep="", lineterminator="\n")
+
+
+def read_table(path: str | Path) -> pd.DataFrame:
+    """Read a table written by aoi_fix (CSV or Parquet by suffix)."""
+    path = Path(path)
+    if path.suffix == ".parquet":
+        return pd.read_parquet(path)
+    return pd.read_csv(path, keep_default_na=False, na_values=[""])
+
+
+class AtomicOutputs:
+    """Collect outputs under temporary names; publish all or none.
+
+    >>> import tempfile, pathlib
+    >>> d = pathlib.Path(tempfile.mkdtemp())
+    >>> with AtomicOutputs() as out:
+    ...     _ = out.table(pd.DataFrame({"a": [1]}), d / "t.csv")
+    >>> (d / "t.csv").read_text()
+    'a\\n1\\n'
+    """
+
+    def __init__(self) -> None:
+        self._pending: list[tuple[Path, Path]] = []
+
+    def _tmp_for(self, final: Path) -> Path:
+        final = Path(final)
+        folder = final.parent if str(final.parent) else Path(".")
+        if final.exists() and final.is_dir():
+            raise OutputError(f"{final}: output path is a folder; expected a file name")
+        if folder.exists() and not folder.is_dir():
+            raise OutputError(f"{folder}: expected an output folder, found a file")
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".tmp", dir=folder)
+        except FileExistsError:
+            raise OutputError(f"{folder}: expected an output folder, found a file") from None
+        except OSError as e:
+            raise OutputError(f"{folder}: cannot write here ({e.strerror})") from None
+        os.close(fd)
+        self._pending.append((Path(tmp), final))
+        return Path(tmp)
+
+    def table(self, df: pd.DataFrame, final: str | Path, fmt: str = "csv") -> Path:
+        tmp = self._tmp_for(Path(final))
+        try:
+            _write(df, tmp, fmt)
+        except OSError as e:
+            raise OutputError(f"{final}: cannot write ({e.strerror})") from None
+        return Path(final)
+
+    def json(self, obj: Any, final: str | Path) -> Path:
+        tmp = self._tmp_for(Path(final))
+        tmp.write_text(json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n")
+        return Path(final)
+
+    def file(self, final: str | Path, writer) -> Path:
+        """Let ``writer(tmp_path)`` produce a file (e.g. a figure)."""
+        tmp = self._tmp_for(Path(final))
+        writer(tmp)
+        return Path(final)
+
+    def discard(self) -> None:
+        for tmp, _ in self._pending:
+            try:
+                tmp.unlink()
+            except FileNotFoundError:
+                pass
+        self._pending.clear()
+
+    def commit(self) -> None:
+        for tmp, final in self._pending:
+            os.replace(tmp, final)
+        self._pending.clear()
+
+    def __enter__(self) -> "AtomicOutputs":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is None:
+            self.commit()
+        else:
+            self.discard()
+
+
+def _json_default(o: Any):
+    import numpy as np
+
+    if isinstance(o, (np.integer,)):
+        return int(o)
+    if isinstance(o, (np.floating,)):
+        return float(o)
+    if isinstance(o, (np.bool_,)):
+        return bool(o)
+    if isinstance(o, Path):
+        return str(o)
+    if isinstance(o, tuple):
+        return list(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def write_table(df: pd.DataFrame, path: str | Path, fmt: str = "csv") -> Path:
+    """Write one table atomically."""
+    with AtomicOutputs() as out:
+        out.table(df, path, fmt)
+    return Path(path)

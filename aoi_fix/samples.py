@@ -1,0 +1,330 @@
+"""Read any tracker's raw sample file into one tidy frame.
+
+The tidy frame has one row per input row, in file order::
+
+    t_ms   float64  time on the recording's own clock, in ms
+    x_px   float64  gaze on the display in px (NaN when not valid)
+    y_px   float64
+    valid  bool     a usable gaze position exists for this sample
+
+Binocular files also keep ``x_left_px, y_left_px, valid_left`` and the right-eye
+equivalents; ``x_px/y_px`` is then the mean of the eyes where both are valid
+and the valid eye where only one is.
+
+A sample is invalid when its position cell is empty or one of
+``[samples] missing_values``, when its validity column says so, when the
+position is not finite, or when it lies farther outside the display than
+``max_offscreen_frac`` of the display's size (a tracker's "lost" sentinel).
+Invalid samples are kept (never dropped) so that every row is accounted for.
+"""
+
+from __future__ import annotations
+
+import csv
+import gzip
+import io
+import logging
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .config import Display, SampleColumns
+from .errors import InputFormatError, NoValidSamplesError
+
+__all__ = ["read_samples", "tidy_samples", "nominal_interval_ms", "TIME_SCALE_MS"]
+
+log = logging.getLogger(__name__)
+
+#: Multiply a timestamp in this unit by the factor to get ms.
+TIME_SCALE_MS = {"s": 1000.0, "ms": 1.0, "us": 1e-3, "ns": 1e-6}
+
+_TRUE_TEXT = {"true", "t", "yes", "y", "valid"}
+_FALSE_TEXT = {"false", "f", "no", "n", "invalid", ""}
+
+
+def _open_text(path: Path):
+    if path.suffix == ".gz":
+        return io.TextIOWrapper(gzip.open(path, "rb"), encoding="utf-8-sig", newline="")
+    return open(path, encoding="utf-8-sig", newline="")
+
+
+def _head_line(path: Path) -> str:
+    try:
+        with _open_text(path) as fh:
+            for line in fh:
+                if line.strip():
+                    return line.rstrip("\r\n")
+    except UnicodeDecodeError as e:
+        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start}); expected a "
+                               "delimited text file") from None
+    except (OSError, EOFError) as e:
+        raise InputFormatError(f"{path}: cannot read ({e})") from None
+    raise InputFormatError(f"{path}: the file is empty; expected a header line and samples")
+
+
+def _sniff_delimiter(header: str, cols: SampleColumns, path: Path) -> str:
+    if cols.delimiter != "auto":
+        return cols.delimiter
+    candidates = ["\t", ";", ","] if cols.decimal == "," else [",", "\t", ";"]
+    if cols.decimal == ",":
+        candidates.remove(",")
+    best = max(candidates, key=lambda d: len(header.split(d)))
+    if len(header.split(best)) < 2:
+        raise InputFormatError(f"{path}: line 1: cannot tell the delimiter (tried comma, "
+                               "semicolon, tab); set [samples] delimiter")
+    return best
+
+
+def _needed_columns(cols: SampleColumns) -> dict[str, str]:
+    """Role -> column name for every column the study names."""
+    roles = ["time", "x", "y", "x_left", "y_left", "x_right", "y_right",
+             "valid", "valid_left", "valid_right"]
+    return {r: getattr(cols, r) for r in roles if getattr(cols, r)}
+
+
+def _diagnose(path: Path, delimiter: str, decimal: str, header: list[str],
+              numeric: list[str], missing: set[str]) -> str:
+    """Find the first bad line in a file pyarrow refused (error path only)."""
+    idx = {name: header.index(name) for name in numeric}
+    with _open_text(path) as fh:
+        reader = csv.reader(fh, delimiter=delimiter)
+        next(reader, None)
+        for lineno, row in enumerate(reader, start=2):
+            if not row or all(not c.strip() for c in row):
+                continue
+            if len(row) != len(header):
+                return (f"{path}: line {lineno}: found {len(row)} fields, expected "
+                        f"{len(header)} (row cut off, or a different delimiter?)")
+            for name, i in idx.items():
+                cell = row[i].strip()
+                if cell in missing:
+                    continue
+                text = cell.replace(decimal, ".") if decimal == "," else cell
+                try:
+                    float(text)
+                except ValueError:
+                    return (f"{path}: line {lineno}, column '{name}': found {cell!r}, "
+                            f"expected a number with decimal mark '{decimal}'")
+    return f"{path}: cannot parse as delimited text with delimiter {delimiter!r}"
+
+
+def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
+    """Read only the named columns as a DataFrame (pyarrow engine)."""
+    import pyarrow as pa
+
+    needed = _needed_columns(cols)
+    names = list(dict.fromkeys(needed.values()))
+    if path.suffix == ".parquet":
+        import pyarrow.parquet as pq
+        try:
+            schema = pq.read_schema(path)
+        except Exception as e:  # pyarrow raises several types here
+            raise InputFormatError(f"{path}: not a readable Parquet file ({e})") from None
+        missing_cols = [n for n in names if n not in schema.names]
+        if missing_cols:
+            raise InputFormatError(f"{path}: column '{missing_cols[0]}' is missing; "
+                                   f"found columns: {', '.join(schema.names)}")
+        return pq.read_table(path, columns=names).to_pandas()
+
+    import pyarrow.csv as pcsv
+
+    header_line = _head_line(path)
+    delimiter = _sniff_delimiter(header_line, cols, path)
+    header = [h.strip().strip('"') for h in header_line.split(delimiter)]
+    for role, name in needed.items():
+        if name not in header:
+            raise InputFormatError(
+                f"{path}: line 1: column '{name}' ([samples] {role}) is missing; found "
+                f"columns: {', '.join(header)}" + (" (wrong delimiter?)" if len(header) == 1
+                                                   else ""))
+    numeric = [needed[r] for r in ("time", "x", "y", "x_left", "y_left", "x_right", "y_right")
+               if r in needed]
+    missing = set(cols.missing_values)
+    validity = [needed[r] for r in ("valid", "valid_left", "valid_right") if r in needed]
+    column_types = {n: pa.float64() for n in numeric if n != cols.time}
+    for v in validity:
+        column_types[v] = pa.string()
+    convert = pcsv.ConvertOptions(
+        include_columns=names, column_types=column_types, null_values=list(missing),
+        strings_can_be_null=True, decimal_point=cols.decimal, quoted_strings_can_be_null=True)
+    parse = pcsv.ParseOptions(delimiter=delimiter)
+    try:
+        table = pcsv.read_csv(path, parse_options=parse, convert_options=convert,
+                              read_options=pcsv.ReadOptions(block_size=1 << 24))
+    except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError, EOFError, OSError) as e:
+        log.debug("pyarrow refused %s: %s", path, e)
+        raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
+                                         missing)) from None
+    tcol = table.column(cols.time)
+    if not (pa.types.is_integer(tcol.type) or pa.types.is_floating(tcol.type)
+            or pa.types.is_null(tcol.type)):
+        raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
+                                         missing))
+    return table.to_pandas()
+
+
+def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str) -> np.ndarray:
+    s = values.astype("string").str.strip()
+    if cols.valid_codes:
+        ok = s.isin(list(cols.valid_codes)).to_numpy(dtype=bool, na_value=False)
+        return ok
+    low = s.str.lower()
+    num = pd.to_numeric(low, errors="coerce")
+    is_text_true = low.isin(list(_TRUE_TEXT)).to_numpy(dtype=bool, na_value=False)
+    is_text_false = low.isin(list(_FALSE_TEXT)).to_numpy(dtype=bool, na_value=False)
+    numv = num.to_numpy(dtype=float, na_value=np.nan)
+    unknown = np.isnan(numv) & ~is_text_true & ~is_text_false & low.notna().to_numpy()
+    if unknown.any():
+        i = int(np.argmax(unknown))
+        raise InputFormatError(f"{path}: line {i + 2}, column '{name}': found {s.iloc[i]!r}, "
+                               "expected a validity value (nonzero/true = valid, or set "
+                               "[samples] valid_codes)")
+    return is_text_true | (np.nan_to_num(numv, nan=0.0) != 0)
+
+
+def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
+                 source: str = "samples") -> pd.DataFrame:
+    """Turn a raw table (columns named as in ``[samples]``) into the tidy frame.
+
+    Parameters
+    ----------
+    raw : DataFrame
+        One row per sample, with the columns named in ``cols``.
+    cols : SampleColumns
+        The ``[samples]`` section.
+    display : Display
+        Used for normalised coordinates and the off-display rule.
+    source : str
+        File name used in error messages.
+
+    Returns
+    -------
+    DataFrame
+        ``t_ms, x_px, y_px, valid`` (+ per-eye columns for binocular input).
+
+    Examples
+    --------
+    >>> from aoi_fix.config import Display, SampleColumns
+    >>> d = Display(width_px=100, height_px=100, width_mm=100.0, height_mm=100.0,
+    ...             distance_mm=500.0)
+    >>> raw = pd.DataFrame({"t": [0.0, 0.5], "gx": [0.5, None], "gy": [0.25, 0.5]})
+    >>> tidy_samples(raw, SampleColumns(time="t", time_unit="s", x="gx", y="gy",
+    ...              coords="norm"), d)
+         t_ms  x_px  y_px  valid
+    0     0.0  50.0  25.0   True
+    1   500.0   NaN   NaN  False
+    """
+    if len(raw) == 0:
+        raise InputFormatError(f"{source}: no sample rows after the header; expected at "
+                               "least one sample")
+    t_raw = raw[cols.time]
+    t_num = pd.to_numeric(t_raw, errors="coerce")
+    bad = t_num.isna().to_numpy() | ~np.isfinite(t_num.to_numpy(dtype=float, na_value=np.nan))
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise InputFormatError(f"{source}: line {i + 2}, column '{cols.time}': found "
+                               f"{t_raw.iloc[i]!r}, expected a finite time in {cols.time_unit}")
+    t_ms = t_num.to_numpy(dtype=float) * TIME_SCALE_MS[cols.time_unit]
+    if len(t_ms) > 1:
+        step = np.diff(t_ms)
+        back = step <= 0
+        if back.any():
+            i = int(np.argmax(back)) + 1
+            what = "repeats" if step[i - 1] == 0 else "goes backwards"
+            raise InputFormatError(
+                f"{source}: line {i + 2}, column '{cols.time}': time {what} "
+                f"({t_raw.iloc[i - 1]} then {t_raw.iloc[i]}); expected strictly increasing "
+                "times")
+
+    sx, sy = (display.width_px, display.height_px) if cols.coords == "norm" else (1.0, 1.0)
+    lim_x = cols.max_offscreen_frac * display.width_px
+    lim_y = cols.max_offscreen_frac * display.height_px
+
+    def eye(xn: str, yn: str, vn: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        x = pd.to_numeric(raw[xn], errors="coerce").to_numpy(dtype=float, na_value=np.nan) * sx
+        y = pd.to_numeric(raw[yn], errors="coerce").to_numpy(dtype=float, na_value=np.nan) * sy
+        ok = np.isfinite(x) & np.isfinite(y)
+        ok &= (x >= -lim_x) & (x <= display.width_px + lim_x)
+        ok &= (y >= -lim_y) & (y <= display.height_px + lim_y)
+        if vn:
+            ok &= _valid_from(raw[vn], cols, Path(source), vn)
+        x = np.where(ok, x, np.nan)
+        y = np.where(ok, y, np.nan)
+        return x, y, ok
+
+    out = {"t_ms": t_ms}
+    if cols.binocular:
+        eyes = {}
+        for e in ("left", "right"):
+            xn = getattr(cols, f"x_{e}")
+            if xn:
+                eyes[e] = eye(xn, getattr(cols, f"y_{e}"), getattr(cols, f"valid_{e}"))
+        stack_x = np.vstack([v[0] for v in eyes.values()])
+        stack_y = np.vstack([v[1] for v in eyes.values()])
+        with np.errstate(invalid="ignore"), np.testing.suppress_warnings() as sup:
+            sup.filter(RuntimeWarning)
+            x = np.nanmean(stack_x, axis=0)
+            y = np.nanmean(stack_y, axis=0)
+        valid = np.isfinite(x) & np.isfinite(y)
+        out.update(x_px=x, y_px=y, valid=valid)
+        for e, (ex, ey, ev) in eyes.items():
+            out[f"x_{e}_px"], out[f"y_{e}_px"], out[f"valid_{e}"] = ex, ey, ev
+    else:
+        x, y, ok = eye(cols.x, cols.y, cols.valid)
+        out.update(x_px=x, y_px=y, valid=ok)
+    return pd.DataFrame(out)
+
+
+def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.DataFrame:
+    """Read a raw sample file (CSV/TSV/semicolon, optionally ``.gz``, or Parquet).
+
+    Parameters
+    ----------
+    path : str or Path
+        The recording. Delimiter is sniffed unless ``[samples] delimiter`` is set;
+        a UTF-8 byte-order mark, CRLF line ends and trailing blank lines are fine.
+    cols : SampleColumns
+        The ``[samples]`` section of the study.
+    display : Display
+        The ``[display]`` section.
+
+    Returns
+    -------
+    DataFrame
+        The tidy frame (see the module docstring), one row per input row.
+
+    Raises
+    ------
+    InputFormatError
+        Missing file or column, text in a number column, a row cut off, times
+        missing, repeated or going backwards; the message names file and line.
+    NoValidSamplesError
+        No sample has a valid gaze position.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputFormatError(f"{path}: samples file not found")
+    if path.is_dir():
+        raise InputFormatError(f"{path}: expected a samples file, found a folder")
+    raw = _read_table(path, cols)
+    tidy = tidy_samples(raw, cols, display, source=str(path))
+    if not tidy["valid"].any():
+        raise NoValidSamplesError(f"{path}: none of the {len(tidy)} samples has a valid gaze "
+                                  "position (check [samples] columns, coords and validity)")
+    return tidy
+
+
+def nominal_interval_ms(t_ms: np.ndarray, rate_hz: float = 0.0) -> float:
+    """The recording's nominal sample interval in ms.
+
+    ``1000 / rate_hz`` when the rate is given, else the median time step.
+
+    >>> nominal_interval_ms(np.array([0.0, 4.0, 8.0, 20.0]))
+    4.0
+    """
+    if rate_hz > 0:
+        return 1000.0 / rate_hz
+    if len(t_ms) < 2:
+        return 1.0
+    return float(np.median(np.diff(t_ms)))

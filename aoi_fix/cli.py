@@ -78,6 +78,31 @@ def fixations(
     typer.echo(f"{len(table)} fixations written to {out}", err=True)
 
 
+@app.command()
+@handle_errors
+def convert(
+    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
+    trials: Path = typer.Option(..., "--trials", help="Trial table: trial, stimulus, start, end."),
+    aois: Path = typer.Option(..., "--aois", help="AOI table (CSV with WKT, or GeoJSON)."),
+    checks: Optional[Path] = typer.Option(None, "--checks",
+                                          help="Calibration-check targets: onset, offset, "
+                                               "x_px, y_px."),
+    out_dir: Path = typer.Option(..., "--out-dir", help="Folder for the output tables."),
+    set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
+    fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+) -> None:
+    """Convert one session: fixations, AOI hits on moving regions, per-trial tables."""
+    from .pipeline import convert as run
+
+    _check_format(fmt)
+    tables = run(samples, study=study, trials=trials, aois=aois, checks=checks,
+                 out_dir=out_dir, fmt=fmt, overrides=set_ or ())
+    n = tables["manifest"]["samples"]
+    typer.echo(f"{len(tables['fixations'])} fixations, {len(tables['trial_quality'])} trials, "
+               f"{n['total']} samples accounted for; tables in {out_dir}", err=True)
+
+
 def main() -> None:  # console-script entry point
     app()
 

@@ -30,7 +30,7 @@ from .samples import nominal_interval_ms
 if TYPE_CHECKING:  # pragma: no cover
     from .config import Detection, Display
 
-__all__ = ["ivt", "idt", "merge_and_discard", "detect_fixations", "velocity_deg_s",
+__all__ = ["ivt", "idt", "merge_and_discard", "detect_fixations", "detect_filled", "velocity_deg_s",
            "FIXATION_COLUMNS"]
 
 log = logging.getLogger(__name__)
@@ -457,26 +457,9 @@ def merge_and_discard(fixations: pd.DataFrame, samples: pd.DataFrame, *, display
     return out
 
 
-def detect_fixations(samples: pd.DataFrame, *, display: "Display", detection: "Detection",
-                     interval_ms: float | None = None) -> pd.DataFrame:
-    """The whole detection stage: fill gaps, run the chosen method, merge and discard.
-
-    Parameters
-    ----------
-    samples : DataFrame
-        Tidy samples from :func:`aoi_fix.read_samples`.
-    display, detection
-        The ``[display]`` and ``[detection]`` sections of the study.
-
-    Returns
-    -------
-    DataFrame
-        The fixation table (see module docstring).
-    """
-    t = samples["t_ms"].to_numpy(dtype=float)
-    if interval_ms is None:
-        interval_ms = nominal_interval_ms(t)
-    filled = fill_gaps(samples, max_gap_ms=detection.max_gap_ms, interval_ms=interval_ms)
+def detect_filled(filled: pd.DataFrame, *, display: "Display", detection: "Detection",
+                  interval_ms: float) -> pd.DataFrame:
+    """Run the chosen method on gap-filled samples, then merge and discard."""
     if detection.method == "idt":
         raw = idt(filled, display=display,
                   dispersion_threshold_deg=detection.dispersion_threshold_deg,
@@ -494,3 +477,28 @@ def detect_fixations(samples: pd.DataFrame, *, display: "Display", detection: "D
                              merge_max_angle_deg=detection.merge_max_angle_deg,
                              min_fixation_ms=detection.min_fixation_ms,
                              interval_ms=interval_ms)
+
+
+def detect_fixations(samples: pd.DataFrame, *, display: "Display", detection: "Detection",
+                     interval_ms: float | None = None) -> pd.DataFrame:
+    """The whole detection stage: fill gaps, run the chosen method, merge and discard.
+
+    Parameters
+    ----------
+    samples : DataFrame
+        Tidy samples from :func:`aoi_fix.read_samples`.
+    display, detection
+        The ``[display]`` and ``[detection]`` sections of the study.
+    interval_ms : float, optional
+        Nominal sample interval; default the median time step.
+
+    Returns
+    -------
+    DataFrame
+        The fixation table (see module docstring).
+    """
+    t = samples["t_ms"].to_numpy(dtype=float)
+    if interval_ms is None:
+        interval_ms = nominal_interval_ms(t)
+    filled = fill_gaps(samples, max_gap_ms=detection.max_gap_ms, interval_ms=interval_ms)
+    return detect_filled(filled, display=display, detection=detection, interval_ms=interval_ms)

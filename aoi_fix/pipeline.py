@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -9,10 +10,12 @@ import pandas as pd
 
 from .config import Study, load_study
 from .detect import detect_fixations
-from .output import AtomicOutputs, table_suffix
+from .errors import OutputError
+from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_file, table_suffix
 from .samples import nominal_interval_ms, read_samples
 
-__all__ = ["fixations_table", "fixations_from_file", "FIXATION_OUTPUT_COLUMNS"]
+__all__ = ["fixations_table", "fixations_from_file", "FIXATION_OUTPUT_COLUMNS", "convert",
+           "load_session", "match_session", "convert_session", "write_outputs"]
 
 FIXATION_OUTPUT_COLUMNS = ["trial", "fixation", "onset_ms", "offset_ms", "duration_ms",
                            "x_px", "y_px", "aoi"]
@@ -69,3 +72,261 @@ def fixations_from_file(samples_path: str | Path, study: Study | str | Path, *,
         with AtomicOutputs() as w:
             w.table(table, out, fmt)
     return table
+
+
+# --------------------------------------------------------------------------- convert
+
+@dataclass
+class Session:
+    """Everything read from disk for one recording, validated and cross-checked."""
+
+    study: Study
+    samples: pd.DataFrame
+    interval_ms: float
+    trials: pd.DataFrame
+    aois: "object"
+    checks: pd.DataFrame | None
+    paths: dict[str, Path]
+
+
+@dataclass
+class Matched:
+    """Per-sample placement, independent of detection settings."""
+
+    trial_idx: np.ndarray
+    frame: np.ndarray
+    code: np.ndarray
+    names_by_trial: list[tuple[str, ...]]
+
+
+def load_session(samples_path, study, trials_path, aois_path, checks_path=None, *,
+                 overrides=()) -> Session:
+    """Read and cross-check all inputs of one session (no detection yet)."""
+    from .aois import read_aois, stimulus_check
+    from .trials import read_trials
+
+    if not isinstance(study, Study):
+        study = load_study(study, overrides)
+    samples = read_samples(samples_path, study.samples, study.display)
+    interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
+    trials = read_trials(trials_path, study=study)
+    aois = read_aois(aois_path, stimuli=study.stimuli)
+    stimulus_check(trials, aois, trials_path, aois_path)
+    checks = None
+    if checks_path is not None:
+        from .quality import read_checks
+        checks = read_checks(checks_path, study=study, samples=samples)
+    paths = {"samples": Path(samples_path), "trials": Path(trials_path),
+             "aois": Path(aois_path)}
+    if checks_path is not None:
+        paths["checks"] = Path(checks_path)
+    return Session(study=study, samples=samples, interval_ms=interval, trials=trials,
+                   aois=aois, checks=checks, paths=paths)
+
+
+def _full_interpolation(samples: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Positions with every interior gap interpolated (what any gap filling can give)."""
+    t = samples["t_ms"].to_numpy(float)
+    x = samples["x_px"].to_numpy(float)
+    y = samples["y_px"].to_numpy(float)
+    v = samples["valid"].to_numpy(bool)
+    vi = np.flatnonzero(v)
+    if len(vi) == 0:
+        return x, y
+    xi, yi = x.copy(), y.copy()
+    inner = ~v & (np.arange(len(t)) > vi[0]) & (np.arange(len(t)) < vi[-1])
+    xi[inner] = np.interp(t[inner], t[vi], x[vi])
+    yi[inner] = np.interp(t[inner], t[vi], y[vi])
+    return xi, yi
+
+
+def match_session(session: Session, *, x_px=None, y_px=None) -> Matched:
+    """Trial, video frame and AOI code of every sample (one vectorised pass per trial).
+
+    Codes: >= 0 index into the trial's AOI names (priority order), -1 on the
+    video outside every AOI, -2 off the video, -3 outside every trial or no
+    position.
+    """
+    from . import geometry
+    from .aois import match_points
+    from .summary import CODE_NONE, CODE_NOT_IN_TRIAL, CODE_OFF_VIDEO
+    from .trials import assign_trials, frame_index, on_video, screen_to_video
+
+    study, trials = session.study, session.trials
+    t = session.samples["t_ms"].to_numpy(float)
+    if x_px is None:
+        x_px, y_px = _full_interpolation(session.samples)
+    trial_idx = assign_trials(t, trials)
+    frame = frame_index(t, trial_idx, trials, study.stimuli)
+    xv, yv = screen_to_video(x_px, y_px, trial_idx, trials, study.stimuli)
+    onv = on_video(x_px, y_px, trial_idx, trials)
+    code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int64)
+    has_pos = np.isfinite(x_px) & np.isfinite(y_px) & (trial_idx >= 0)
+    code[has_pos & ~onv] = CODE_OFF_VIDEO
+    margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
+    names_by_trial = []
+    order = np.argsort(trial_idx, kind="stable")
+    bounds = np.searchsorted(trial_idx[order], np.arange(len(trials) + 1))
+    for k in range(len(trials)):  # a loop over trials
+        stim = trials["stimulus"].iat[k]
+        names = session.aois.names(stim, study.aois.priority) if stim in session.aois.stimuli() \
+            else ()
+        names_by_trial.append(tuple(names))
+        rows = order[bounds[k]:bounds[k + 1]]
+        rows = rows[has_pos[rows] & onv[rows]]
+        if len(rows) == 0:
+            continue
+        if not names:
+            code[rows] = CODE_NONE
+            continue
+        scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
+        margin_vid = float(margin_screen_px[0]) * scale
+        code[rows] = match_points(session.aois, stim, frame[rows], xv[rows], yv[rows],
+                                  margin_px=margin_vid, priority=study.aois.priority)
+    return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)
+
+
+def _boundaries(trials: pd.DataFrame) -> np.ndarray:
+    return np.unique(np.r_[trials["start_ms"].to_numpy(float), trials["end_ms"].to_numpy(float)])
+
+
+def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
+              filled: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    """Per-trial tables from detected fixations and the per-sample placement."""
+    from .summary import (aoi_summary, fixation_of_sample, fixation_parts,
+                          sample_weights, trial_quality)
+
+    t = session.samples["t_ms"].to_numpy(float)
+    fid = fixation_of_sample(len(t), fixations)
+    w = sample_weights(t, fid, fixations, _boundaries(session.trials))
+    n_codes = max((len(n) for n in matched.names_by_trial), default=0)
+    parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes)
+    trials = session.trials
+    tr_label = np.where(parts["trial_row"].to_numpy() >= 0,
+                        trials["trial"].to_numpy(object)[np.maximum(parts["trial_row"].to_numpy(), 0)]
+                        if len(trials) else None, None)
+    aoi_label = []
+    for row, c in zip(parts["trial_row"].to_numpy(), parts["code"].to_numpy()):
+        aoi_label.append(matched.names_by_trial[row][c] if row >= 0 and c >= 0 else None)
+    fix_table = fixations_table(parts, trial=pd.array(tr_label, dtype="string"),
+                                aoi=pd.array(aoi_label, dtype="string"))
+    summary = aoi_summary(trials, matched.names_by_trial, matched.trial_idx, matched.code, w,
+                          parts)
+    raw_valid = session.samples["valid"].to_numpy(bool)
+    quality = trial_quality(trials, matched.trial_idx, raw_valid, w, session.interval_ms,
+                            min_valid_fraction=session.study.quality.min_valid_fraction)
+    return {"fixations": fix_table, "aoi_summary": summary, "trial_quality": quality,
+            "_parts": parts, "_fid": fid, "_w": w}
+
+
+def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
+                tables: dict) -> dict:
+    t = session.samples["t_ms"].to_numpy(float)
+    valid = session.samples["valid"].to_numpy(bool)
+    fill = filled["filled"].to_numpy(bool)
+    lost = ~valid & ~fill
+    in_tr = matched.trial_idx >= 0
+    in_fix = tables["_fid"] >= 0
+    parts = tables["_parts"]
+    per_trial = []
+    for k in range(len(session.trials)):
+        m = matched.trial_idx == k
+        per_trial.append({
+            "trial": str(session.trials["trial"].iat[k]), "samples": int(m.sum()),
+            "valid": int((m & valid).sum()), "gap_filled": int((m & fill).sum()),
+            "lost": int((m & lost).sum()), "in_fixations": int((m & in_fix).sum())})
+    return {
+        "samples": {
+            "total": int(len(t)), "valid": int(valid.sum()), "gap_filled": int(fill.sum()),
+            "lost": int(lost.sum()), "inside_trials": int(in_tr.sum()),
+            "outside_trials": int((~in_tr).sum()), "in_fixations": int(in_fix.sum()),
+            "in_fixations_inside_trials": int((in_fix & in_tr).sum()),
+            "in_fixations_outside_trials": int((in_fix & ~in_tr).sum()),
+            "rule": "total = valid + gap_filled + lost = inside_trials + outside_trials",
+        },
+        "fixations": {
+            "detected": int(tables["_fid"].max() + 1) if in_fix.any() else 0,
+            "parts_written": int(len(parts)),
+            "parts_outside_trials": int((parts["trial_row"] < 0).sum()),
+            "parts_clipped_at_trial_boundary": int(parts["clipped"].sum()),
+        },
+        "trials": per_trial,
+    }
+
+
+def convert_session(session: Session, *, matched: Matched | None = None) -> dict:
+    """Detection, matching and summaries for one loaded session (nothing written).
+
+    Returns a dict of the output tables plus ``manifest`` (a JSON-able dict).
+    """
+    from . import __version__
+    from .clean import fill_gaps
+    from .detect import detect_filled
+
+    study = session.study
+    filled = fill_gaps(session.samples, max_gap_ms=study.detection.max_gap_ms,
+                       interval_ms=session.interval_ms)
+    fixations = detect_filled(filled, display=study.display, detection=study.detection,
+                              interval_ms=session.interval_ms)
+    if matched is None:
+        matched = match_session(session)
+    tables = summarise(session, matched, fixations, filled)
+    manifest = {
+        "tool": "aoi_fix", "version": __version__, "notice": RESEARCH_NOTICE,
+        "inputs": {k: {"path": str(p), "sha256": sha256_file(p)}
+                   for k, p in session.paths.items()},
+        "parameters": study.to_dict(),
+        "detection_used": {
+            "nominal_interval_ms": session.interval_ms,
+            **{k: v for k, v in fixations.attrs.items()}},
+        **_accounting(session, matched, filled, tables),
+    }
+    tables["manifest"] = manifest
+    return tables
+
+
+OUTPUT_TABLES = ("fixations", "aoi_summary", "trial_quality")
+
+
+def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv") -> list[Path]:
+    """Write the public tables and ``manifest.json`` atomically (all or none)."""
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise OutputError(f"{out_dir}: expected an output folder, found a file")
+    written = []
+    with AtomicOutputs() as w:
+        for name in OUTPUT_TABLES + ("check_quality",):
+            if name in tables:
+                written.append(w.table(tables[name], out_dir / f"{name}{table_suffix(fmt)}",
+                                       fmt))
+        written.append(w.json(tables["manifest"], out_dir / "manifest.json"))
+    return written
+
+
+def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str = "csv",
+            overrides=()) -> dict:
+    """Convert one session: fixations, AOI per fixation, per-trial tables.
+
+    Parameters
+    ----------
+    samples, trials, aois, checks : path
+        The raw recording, the trial table, the AOI table (CSV or GeoJSON) and
+        optionally the calibration-check table.
+    study : Study or path
+        Study (or TOML file; ``overrides`` are applied).
+    out_dir : path, optional
+        Folder for ``fixations``, ``aoi_summary``, ``trial_quality`` and
+        ``manifest.json``; nothing is written when omitted.
+    fmt : {"csv", "parquet"}
+
+    Returns
+    -------
+    dict
+        ``fixations``, ``aoi_summary``, ``trial_quality`` DataFrames and the
+        ``manifest`` dict.
+    """
+    session = load_session(samples, study, trials, aois, checks, overrides=overrides)
+    tables = convert_session(session)
+    if out_dir is not None:
+        write_outputs(tables, out_dir, fmt)
+    return {k: v for k, v in tables.items() if not k.startswith("_")}

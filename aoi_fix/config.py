@@ -145,6 +145,9 @@ class Quality:
                                               "valid samples", min=0, max=1)
     max_offset_deg: float = _opt(1.5, doc="flag_drift above this modelled offset", min=0)
     correct_offset: bool = _opt(False, doc="subtract the modelled drift before AOI matching")
+    check_max_offset_deg: float = _opt(5.0, doc="a check fixation farther than this from "
+                                                "its target is not used", min=0,
+                                       min_inclusive=False)
 
 
 @dataclass(frozen=True)

@@ -268,9 +268,35 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
                        interval_ms=session.interval_ms)
     fixations = detect_filled(filled, display=study.display, detection=study.detection,
                               interval_ms=session.interval_ms)
-    if matched is None:
+    check_table = None
+    model = None
+    if session.checks is not None:
+        from .quality import check_quality, drift_model
+        check_table = check_quality(session.checks, session.samples, fixations,
+                                    display=study.display,
+                                    max_offset_deg=study.quality.check_max_offset_deg)
+        model = drift_model(check_table)
+    corrected = bool(study.quality.correct_offset and model is not None)
+    if corrected:
+        t = session.samples["t_ms"].to_numpy(float)
+        xi, yi = _full_interpolation(session.samples)
+        dx, dy = model(t)
+        matched = match_session(session, x_px=xi - dx, y_px=yi - dy)
+        fixations = fixations.copy()
+        mid = (fixations["onset_ms"].to_numpy(float) + fixations["offset_ms"].to_numpy(float)) / 2
+        fdx, fdy = model(mid)
+        fixations["x_px"] = fixations["x_px"] - fdx
+        fixations["y_px"] = fixations["y_px"] - fdy
+    elif matched is None:
         matched = match_session(session)
     tables = summarise(session, matched, fixations, filled)
+    from .quality import trial_drift
+    drift = trial_drift(session.trials, check_table, display=study.display,
+                        max_offset_deg=study.quality.max_offset_deg)
+    for c in drift.columns:
+        tables["trial_quality"][c] = drift[c].to_numpy() if c != "flag_drift" else drift[c].array
+    if check_table is not None:
+        tables["check_quality"] = check_table
     manifest = {
         "tool": "aoi_fix", "version": __version__, "notice": RESEARCH_NOTICE,
         "inputs": {k: {"path": str(p), "sha256": sha256_file(p)}
@@ -279,6 +305,10 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         "detection_used": {
             "nominal_interval_ms": session.interval_ms,
             **{k: v for k, v in fixations.attrs.items()}},
+        "offset_correction": {
+            "applied": corrected,
+            "reason": ("[quality] correct_offset = true and usable checks" if corrected else
+                       "off" if not study.quality.correct_offset else "no usable checks")},
         **_accounting(session, matched, filled, tables),
     }
     tables["manifest"] = manifest

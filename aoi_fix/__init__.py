@@ -15,7 +15,8 @@ _EXPORTS = {
     "read_samples": "samples", "fill_gaps": "clean",
     "ivt": "detect", "idt": "detect", "merge_and_discard": "detect",
     "detect_fixations": "detect",
-    "fixations_from_file": "pipeline",
+    "fixations_from_file": "pipeline", "convert": "pipeline", "load_session": "pipeline",
+    "run_demo": "demo",
     "AoiFixError": "errors", "InputFormatError": "errors", "ConfigError": "errors",
     "UsageError": "errors", "NoValidSamplesError": "errors", "OutputError": "errors",
 }

@@ -103,6 +103,29 @@ def convert(
                f"{n['total']} samples accounted for; tables in {out_dir}", err=True)
 
 
+@app.command()
+@handle_errors
+def demo(
+    directory: Path = typer.Argument(Path("demo_out"), help="Folder for the demo inputs and "
+                                                           "outputs."),
+    fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+) -> None:
+    """Run the whole job on an invented storyteller video and a simulated toddler."""
+    import pandas as pd
+
+    from .demo import demo_table, run_demo
+
+    _check_format(fmt)
+    tables = run_demo(directory, fmt=fmt)
+    with pd.option_context("display.width", 120, "display.max_columns", 20):
+        typer.echo("Percent of fixation time per AOI (invented storyteller video, "
+                   "simulated toddler, noisy 60 Hz tracker):")
+        typer.echo(demo_table(tables).to_string())
+    typer.echo(f"\nInputs: {Path(directory) / 'inputs'}\nTables: {Path(directory) / 'out'}")
+    typer.echo("Research tool, not a diagnostic device: any clinical decision belongs to "
+               "qualified clinicians under local rules.")
+
+
 def main() -> None:  # console-script entry point
     app()
 

@@ -134,7 +134,9 @@ class AoiOptions:
     margin_deg: float = _opt(0.0, doc="margin added around every AOI, in degrees", min=0)
     priority: tuple = _opt([], doc="order in which overlapping AOIs win; empty = "
                                    "smallest area first", kind=str)
-    frame_tolerance: int = _opt(0, doc="reserved", min=0)
+    position_window_ms: float = _opt(
+        100.0, doc="each fixation sample is matched at its position averaged over this "
+                   "window within its fixation (0 = the raw sample position)", min=0)
 
 
 @dataclass(frozen=True)
@@ -410,9 +412,15 @@ def apply_overrides(data: dict, overrides: Iterable[str]) -> dict:
     data = {k: (dict(v) if isinstance(v, dict) else v) for k, v in data.items()}
     for text in overrides:
         section, key, value = parse_override(text)
+        target = data.get("stimuli" if section.startswith("stimuli.") else section, {})
+        if not isinstance(target, dict):
+            raise ConfigError(f"study section '[{section.split('.')[0]}]': expected a table of "
+                              f"keys, found {type(target).__name__}")
         if section.startswith("stimuli."):
             name = section.split(".", 1)[1]
             stim = dict(data.setdefault("stimuli", {}))
+            if not isinstance(stim.get(name, {}), dict):
+                raise ConfigError(f"study section '[{section}]': expected a table of keys")
             stim[name] = dict(stim.get(name, {}))
             stim[name][key] = value
             data["stimuli"] = stim

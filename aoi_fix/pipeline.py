@@ -140,12 +140,23 @@ def _full_interpolation(samples: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     return xi, yi
 
 
-def match_session(session: Session, *, x_px=None, y_px=None) -> Matched:
+def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
+                  base: Matched | None = None) -> Matched:
     """Trial, video frame and AOI code of every sample (one vectorised pass per trial).
 
     Codes: >= 0 index into the trial's AOI names (priority order), -1 on the
-    video outside every AOI, -2 off the video, -3 outside every trial or no
-    position.
+    video outside every AOI, -2 off the video, -3 outside every trial, no
+    position, or not in ``rows``.
+
+    Parameters
+    ----------
+    x_px, y_px : ndarray, optional
+        Positions to test (default: the samples with every interior gap
+        interpolated).
+    rows : ndarray of bool, optional
+        Only these samples are tested (e.g. fixation samples).
+    base : Matched, optional
+        Reuse its trial and frame index (they do not depend on positions).
     """
     from . import geometry
     from .aois import match_points
@@ -156,12 +167,17 @@ def match_session(session: Session, *, x_px=None, y_px=None) -> Matched:
     t = session.samples["t_ms"].to_numpy(float)
     if x_px is None:
         x_px, y_px = _full_interpolation(session.samples)
-    trial_idx = assign_trials(t, trials)
-    frame = frame_index(t, trial_idx, trials, study.stimuli)
+    if base is not None:
+        trial_idx, frame = base.trial_idx, base.frame
+    else:
+        trial_idx = assign_trials(t, trials)
+        frame = frame_index(t, trial_idx, trials, study.stimuli)
     xv, yv = screen_to_video(x_px, y_px, trial_idx, trials, study.stimuli)
     onv = on_video(x_px, y_px, trial_idx, trials)
     code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int64)
     has_pos = np.isfinite(x_px) & np.isfinite(y_px) & (trial_idx >= 0)
+    if rows is not None:
+        has_pos &= rows
     code[has_pos & ~onv] = CODE_OFF_VIDEO
     margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
     names_by_trial = []
@@ -277,18 +293,28 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
                                     max_offset_deg=study.quality.check_max_offset_deg)
         model = drift_model(check_table)
     corrected = bool(study.quality.correct_offset and model is not None)
-    if corrected:
+    window = study.aois.position_window_ms
+    if corrected or window > 0 or matched is None:
+        from .clean import fixation_average
+        from .summary import fixation_of_sample
+
         t = session.samples["t_ms"].to_numpy(float)
-        xi, yi = _full_interpolation(session.samples)
-        dx, dy = model(t)
-        matched = match_session(session, x_px=xi - dx, y_px=yi - dy)
+        if window > 0:
+            xm, ym = fixation_average(filled, fixations, window_ms=window,
+                                      interval_ms=session.interval_ms)
+        else:
+            xm, ym = _full_interpolation(session.samples)
+        if corrected:
+            dx, dy = model(t)
+            xm, ym = xm - dx, ym - dy
+        in_fix = fixation_of_sample(len(t), fixations) >= 0
+        matched = match_session(session, x_px=xm, y_px=ym, rows=in_fix, base=matched)
+    if corrected:
         fixations = fixations.copy()
         mid = (fixations["onset_ms"].to_numpy(float) + fixations["offset_ms"].to_numpy(float)) / 2
         fdx, fdy = model(mid)
         fixations["x_px"] = fixations["x_px"] - fdx
         fixations["y_px"] = fixations["y_px"] - fdy
-    elif matched is None:
-        matched = match_session(session)
     tables = summarise(session, matched, fixations, filled)
     from .quality import trial_drift
     drift = trial_drift(session.trials, check_table, display=study.display,

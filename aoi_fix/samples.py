@@ -24,6 +24,7 @@ import csv
 import gzip
 import io
 import logging
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -164,7 +165,30 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
     return table.to_pandas()
 
 
-def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str) -> np.ndarray:
+def _line_scanner(path: Path):
+    """Map a 0-based data row to its line in the file (blank lines skipped by the parser).
+
+    Only called on the error path: it reads the file once.
+    """
+    def line_of(i: int) -> int:
+        seen = -1
+        with _open_text(path) as fh:
+            first = True
+            for lineno, line in enumerate(fh, start=1):
+                if not line.strip():
+                    continue
+                if first:
+                    first = False
+                    continue
+                seen += 1
+                if seen == i:
+                    return lineno
+        return i + 2
+    return line_of
+
+
+def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str,
+                line_of=lambda i: i + 2) -> np.ndarray:
     s = values.astype("string").str.strip()
     if cols.valid_codes:
         ok = s.isin(list(cols.valid_codes)).to_numpy(dtype=bool, na_value=False)
@@ -177,14 +201,14 @@ def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str) -
     unknown = np.isnan(numv) & ~is_text_true & ~is_text_false & low.notna().to_numpy()
     if unknown.any():
         i = int(np.argmax(unknown))
-        raise InputFormatError(f"{path}: line {i + 2}, column '{name}': found {s.iloc[i]!r}, "
+        raise InputFormatError(f"{path}: line {line_of(i)}, column '{name}': found {s.iloc[i]!r}, "
                                "expected a validity value (nonzero/true = valid, or set "
                                "[samples] valid_codes)")
     return is_text_true | (np.nan_to_num(numv, nan=0.0) != 0)
 
 
 def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
-                 source: str = "samples") -> pd.DataFrame:
+                 source: str = "samples", line_of=None) -> pd.DataFrame:
     """Turn a raw table (columns named as in ``[samples]``) into the tidy frame.
 
     Parameters
@@ -197,6 +221,9 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
         Used for normalised coordinates and the off-display rule.
     source : str
         File name used in error messages.
+    line_of : callable, optional
+        Maps a 0-based row to its line in the file for error messages
+        (default: row + 2, a header and no blank lines).
 
     Returns
     -------
@@ -215,6 +242,9 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     0     0.0  50.0  25.0   True
     1   500.0   NaN   NaN  False
     """
+    if line_of is None:
+        def line_of(i: int) -> int:
+            return i + 2
     if len(raw) == 0:
         raise InputFormatError(f"{source}: no sample rows after the header; expected at "
                                "least one sample")
@@ -223,7 +253,7 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     bad = t_num.isna().to_numpy() | ~np.isfinite(t_num.to_numpy(dtype=float, na_value=np.nan))
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputFormatError(f"{source}: line {i + 2}, column '{cols.time}': found "
+        raise InputFormatError(f"{source}: line {line_of(i)}, column '{cols.time}': found "
                                f"{t_raw.iloc[i]!r}, expected a finite time in {cols.time_unit}")
     t_ms = t_num.to_numpy(dtype=float) * TIME_SCALE_MS[cols.time_unit]
     if len(t_ms) > 1:
@@ -233,7 +263,7 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
             i = int(np.argmax(back)) + 1
             what = "repeats" if step[i - 1] == 0 else "goes backwards"
             raise InputFormatError(
-                f"{source}: line {i + 2}, column '{cols.time}': time {what} "
+                f"{source}: line {line_of(i)}, column '{cols.time}': time {what} "
                 f"({t_raw.iloc[i - 1]} then {t_raw.iloc[i]}); expected strictly increasing "
                 "times")
 
@@ -248,7 +278,7 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
         ok &= (x >= -lim_x) & (x <= display.width_px + lim_x)
         ok &= (y >= -lim_y) & (y <= display.height_px + lim_y)
         if vn:
-            ok &= _valid_from(raw[vn], cols, Path(source), vn)
+            ok &= _valid_from(raw[vn], cols, Path(source), vn, line_of)
         x = np.where(ok, x, np.nan)
         y = np.where(ok, y, np.nan)
         return x, y, ok
@@ -262,8 +292,8 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
                 eyes[e] = eye(xn, getattr(cols, f"y_{e}"), getattr(cols, f"valid_{e}"))
         stack_x = np.vstack([v[0] for v in eyes.values()])
         stack_y = np.vstack([v[1] for v in eyes.values()])
-        with np.errstate(invalid="ignore"), np.testing.suppress_warnings() as sup:
-            sup.filter(RuntimeWarning)
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
             x = np.nanmean(stack_x, axis=0)
             y = np.nanmean(stack_y, axis=0)
         valid = np.isfinite(x) & np.isfinite(y)
@@ -308,7 +338,8 @@ def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.
     if path.is_dir():
         raise InputFormatError(f"{path}: expected a samples file, found a folder")
     raw = _read_table(path, cols)
-    tidy = tidy_samples(raw, cols, display, source=str(path))
+    line_of = (lambda i: i + 2) if path.suffix == ".parquet" else _line_scanner(path)
+    tidy = tidy_samples(raw, cols, display, source=str(path), line_of=line_of)
     if not tidy["valid"].any():
         raise NoValidSamplesError(f"{path}: none of the {len(tidy)} samples has a valid gaze "
                                   "position (check [samples] columns, coords and validity)")

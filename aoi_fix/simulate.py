@@ -515,7 +515,9 @@ def storyteller_scene(*, stimulus: str = "story1", fps: float = 30, width_px: in
     hx = 0.5 * W + amp[0] * 0.025 * W * np.sin(2 * np.pi * t_s / 5.3 + ph[0])
     hy = 0.34 * H + amp[1] * 0.012 * H * np.sin(2 * np.pi * t_s / 3.7 + ph[1])
     tilt = np.radians(amp[2] * 4.0 * np.sin(2 * np.pi * t_s / 6.1 + ph[2]))
-    rx, ry = 0.085 * H, 0.11 * H
+    # a close shot: the face fills about a quarter of the frame height (eyes
+    # and mouth a few degrees wide on a typical display)
+    rx, ry = 0.15 * H, 0.19 * H
     mouth_open = 0.5 + 0.5 * np.sin(2 * np.pi * t_s / 0.27 + ph[3]) ** 2
     # book keyframes (fraction of the video): centre, turn angle
     jit = rng.uniform(-0.02, 0.02, 4)
@@ -538,10 +540,10 @@ def storyteller_scene(*, stimulus: str = "story1", fps: float = 30, width_px: in
 
         ex1, ey1 = rot(-0.42 * rx, -0.12 * ry)
         ex2, ey2 = rot(0.42 * rx, -0.12 * ry)
-        eyes = MultiPolygon([_ellipse(ex1, ey1, 0.24 * rx, 0.12 * rx, tilt[f]),
-                             _ellipse(ex2, ey2, 0.24 * rx, 0.12 * rx, tilt[f])])
+        eyes = MultiPolygon([_ellipse(ex1, ey1, 0.3 * rx, 0.17 * rx, tilt[f]),
+                             _ellipse(ex2, ey2, 0.3 * rx, 0.17 * rx, tilt[f])])
         mx, my = rot(0.0, 0.5 * ry)
-        mouth = _ellipse(mx, my, 0.32 * rx, 0.16 * rx * mouth_open[f], tilt[f])
+        mouth = _ellipse(mx, my, 0.4 * rx, 0.2 * rx * mouth_open[f], tilt[f])
         head = _ellipse(hx[f], hy[f], 1.12 * rx, 1.1 * ry, tilt[f], n=36)
         sx = hx[f] * 0.3 + 0.7 * 0.5 * W  # shoulders sway less than the head
         torso = Polygon([(hx[f] - 0.35 * rx, hy[f] + 0.9 * ry),

@@ -311,7 +311,7 @@ def _rolling_extrema(a: np.ndarray, size: int):
 
 
 def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: float = 1.0,
-        min_fixation_ms: float = 100.0, interval_ms: float | None = None) -> pd.DataFrame:
+        min_fixation_ms: float = 60.0, interval_ms: float | None = None) -> pd.DataFrame:
     """Dispersion-threshold identification (I-DT) of fixations.
 
     Exactly the sequential definition of Salvucci & Goldberg (2000): a window

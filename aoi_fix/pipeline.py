@@ -244,13 +244,18 @@ def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
     in_tr = matched.trial_idx >= 0
     in_fix = tables["_fid"] >= 0
     parts = tables["_parts"]
-    per_trial = []
-    for k in range(len(session.trials)):
-        m = matched.trial_idx == k
-        per_trial.append({
-            "trial": str(session.trials["trial"].iat[k]), "samples": int(m.sum()),
-            "valid": int((m & valid).sum()), "gap_filled": int((m & fill).sum()),
-            "lost": int((m & lost).sum()), "in_fixations": int((m & in_fix).sum())})
+    n_tr = len(session.trials)
+    ti = matched.trial_idx[in_tr]
+
+    def count(mask):
+        return np.bincount(ti, weights=mask[in_tr].astype(float), minlength=n_tr).astype(int)
+
+    n_all = np.bincount(ti, minlength=n_tr)
+    n_valid, n_fill, n_lost, n_fix = count(valid), count(fill), count(lost), count(in_fix)
+    per_trial = [{"trial": str(session.trials["trial"].iat[k]), "samples": int(n_all[k]),
+                  "valid": int(n_valid[k]), "gap_filled": int(n_fill[k]),
+                  "lost": int(n_lost[k]), "in_fixations": int(n_fix[k])}
+                 for k in range(n_tr)]
     return {
         "samples": {
             "total": int(len(t)), "valid": int(valid.sum()), "gap_filled": int(fill.sum()),

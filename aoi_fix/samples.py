@@ -144,15 +144,16 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
     missing = set(cols.missing_values)
     validity = [needed[r] for r in ("valid", "valid_left", "valid_right") if r in needed]
     column_types = {n: pa.float64() for n in numeric if n != cols.time}
-    for v in validity:
-        column_types[v] = pa.string()
+    if cols.valid_codes:
+        for v in validity:
+            column_types[v] = pa.string()
     convert = pcsv.ConvertOptions(
         include_columns=names, column_types=column_types, null_values=list(missing),
         strings_can_be_null=True, decimal_point=cols.decimal, quoted_strings_can_be_null=True)
     parse = pcsv.ParseOptions(delimiter=delimiter)
     try:
         table = pcsv.read_csv(path, parse_options=parse, convert_options=convert,
-                              read_options=pcsv.ReadOptions(block_size=1 << 24))
+                              read_options=pcsv.ReadOptions(block_size=1 << 22))
     except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError, EOFError, OSError) as e:
         log.debug("pyarrow refused %s: %s", path, e)
         raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
@@ -189,6 +190,11 @@ def _line_scanner(path: Path):
 
 def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str,
                 line_of=lambda i: i + 2) -> np.ndarray:
+    if pd.api.types.is_bool_dtype(values):
+        return values.to_numpy(dtype=bool, na_value=False)
+    if pd.api.types.is_numeric_dtype(values) and not cols.valid_codes:
+        v = values.to_numpy(dtype=float, na_value=np.nan)
+        return np.nan_to_num(v, nan=0.0) != 0
     s = values.astype("string").str.strip()
     if cols.valid_codes:
         ok = s.isin(list(cols.valid_codes)).to_numpy(dtype=bool, na_value=False)

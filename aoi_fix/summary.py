@@ -117,8 +117,11 @@ def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
 def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
                 trial_idx: np.ndarray, code: np.ndarray, w: np.ndarray,
                 parts: pd.DataFrame) -> pd.DataFrame:
-    """One row per trial and AOI of its stimulus (zeros included) plus the reserved rows."""
-    rows = []
+    """One row per trial and AOI of its stimulus (zeros included) plus the reserved rows.
+
+    Vectorised with ``bincount`` over (trial, code) keys; the only loop builds
+    the label list per trial.
+    """
     in_trial = trial_idx >= 0
     ti, ci, wi = trial_idx[in_trial], code[in_trial], w[in_trial]
     n_tr = len(trials)
@@ -126,31 +129,35 @@ def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
     width = max((len(n) for n in names_by_trial), default=0) + shift
     key = ti * width + (np.maximum(ci, CODE_OFF_VIDEO) + shift)
     tot = np.bincount(key, weights=wi, minlength=n_tr * width).reshape(n_tr, width)
-    p = parts[parts["trial_row"] >= 0]
-    for k in range(n_tr):  # a loop over trials
-        names = names_by_trial[k]
-        start = float(trials["start_ms"].iat[k])
-        dur = float(trials["end_ms"].iat[k]) - start
-        labels = list(names) + [NONE_LABEL, OFF_VIDEO_LABEL]
+    p = parts[parts["trial_row"].to_numpy() >= 0]
+    pk = p["trial_row"].to_numpy(np.int64) * width + (p["code"].to_numpy(np.int64) + shift)
+    n_fix = np.bincount(pk, minlength=n_tr * width).reshape(n_tr, width)
+    first = np.full(n_tr * width, np.inf)
+    np.minimum.at(first, pk, p["onset_ms"].to_numpy(float))
+    first = first.reshape(n_tr, width)
+    # per trial: its AOI codes then the two reserved codes
+    tr_rows, cols, labels = [], [], []
+    for k, names in enumerate(names_by_trial):  # a loop over trials
         codes = list(range(len(names))) + [CODE_NONE, CODE_OFF_VIDEO]
-        fix_ms = np.array([tot[k, c + shift] for c in codes])
-        total = fix_ms.sum()
-        pk = p[p["trial_row"] == k]
-        for lab, c, fm in zip(labels, codes, fix_ms):
-            hits = pk[pk["code"] == c]
-            rows.append({
-                "trial": trials["trial"].iat[k], "stimulus": trials["stimulus"].iat[k],
-                "aoi": lab, "fixation_ms": fm,
-                "pct_fixation": 100.0 * fm / total if total > 0 else np.nan,
-                "pct_trial": 100.0 * fm / dur if dur > 0 else np.nan,
-                "n_fixations": int(len(hits)),
-                "first_fixation_ms": (float(hits["onset_ms"].min()) - start
-                                      if len(hits) else np.nan)})
-    out = pd.DataFrame(rows, columns=["trial", "stimulus", "aoi", "fixation_ms",
-                                      "pct_fixation", "pct_trial", "n_fixations",
-                                      "first_fixation_ms"])
-    out["n_fixations"] = out["n_fixations"].astype("int64")
-    return out
+        tr_rows.extend([k] * len(codes))
+        cols.extend(c + shift for c in codes)
+        labels.extend(list(names) + [NONE_LABEL, OFF_VIDEO_LABEL])
+    r = np.asarray(tr_rows, dtype=np.int64)
+    c = np.asarray(cols, dtype=np.int64)
+    fix_ms = tot[r, c] if len(r) else np.zeros(0)
+    total = np.bincount(r, weights=fix_ms, minlength=n_tr)[r] if len(r) else np.zeros(0)
+    start = trials["start_ms"].to_numpy(float)[r]
+    dur = trials["end_ms"].to_numpy(float)[r] - start
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pct = np.where(total > 0, 100.0 * fix_ms / total, np.nan)
+        pct_trial = np.where(dur > 0, 100.0 * fix_ms / dur, np.nan)
+    f = first[r, c] if len(r) else np.zeros(0)
+    return pd.DataFrame({
+        "trial": trials["trial"].to_numpy()[r], "stimulus": trials["stimulus"].to_numpy()[r],
+        "aoi": np.asarray(labels, dtype=object), "fixation_ms": fix_ms,
+        "pct_fixation": pct, "pct_trial": pct_trial,
+        "n_fixations": (n_fix[r, c] if len(r) else np.zeros(0)).astype("int64"),
+        "first_fixation_ms": np.where(np.isfinite(f), f - start, np.nan)})
 
 
 def trial_quality(trials: pd.DataFrame, trial_idx: np.ndarray, raw_valid: np.ndarray,

@@ -1,0 +1,163 @@
+"""Benchmarks that report ratios (not timed tests): ``make bench``.
+
+Generates simulated sessions (aoi_fix.simulate, 300 Hz style, moving AOIs) of
+two sizes and measures, as whole child processes in the same run:
+
+* ``aoi-fix fixations`` (I-VT and I-DT) and ``aoi-fix convert``;
+* a bare ``pyarrow.csv.read_csv`` of the same samples file (the parse floor);
+* a per-sample Python loop labelling gaze samples with shapely
+  ``Point.contains`` against the polygons of their frame (the naive way),
+  timed on a subsample and scaled per sample;
+* peak memory of ``convert`` (``ru_maxrss`` of the child);
+* ``aoi-fix --version`` start-up.
+
+Ratios use the marginal cost per sample, (t_big - t_small) / (n_big - n_small),
+so interpreter start-up and imports do not hide the real cost.  A cProfile of
+``convert`` on the largest case goes to ``benchmarks/out/profile_convert.txt``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import cProfile
+import io
+import pstats
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+OUT = Path(__file__).resolve().parent / "out"
+BIN = Path(sys.executable).parent
+
+
+def _child(cmd: list[str]) -> tuple[float, float]:
+    """Run a command; return wall seconds and the child's peak RSS in MB."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    t0 = time.perf_counter()
+    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    dt = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return dt, max(after, before) / 1024.0
+
+
+def _best(cmd, repeat=2):
+    runs = [_child(cmd) for _ in range(repeat)]
+    return min(r[0] for r in runs), max(r[1] for r in runs)
+
+
+def make_session(n_samples: int, folder: Path) -> dict:
+    from aoi_fix import simulate
+
+    style = "lab_300hz_seconds"
+    n_trials = simulate.trials_for_samples(style, n_samples)
+    ses = simulate.simulate_session(style, n_trials=n_trials, seed=1)
+    paths = simulate.write_session(ses, folder)
+    paths["n"] = len(ses.raw)
+    return paths
+
+
+def naive_loop_seconds_per_sample(paths: dict, n_sub: int = 20000) -> float:
+    """Per-sample Python loop with shapely Point.contains (the reference, not our code)."""
+    import numpy as np
+    import pandas as pd
+    import shapely
+    from shapely.geometry import Point
+
+    from aoi_fix.config import load_study
+    from aoi_fix.samples import read_samples
+    from aoi_fix.trials import assign_trials, frame_index, read_trials, screen_to_video
+
+    study = load_study(paths["study"])
+    s = read_samples(paths["samples"], study.samples, study.display).iloc[:n_sub * 3]
+    trials = read_trials(paths["trials"], study=study)
+    aois = pd.read_csv(paths["aois"])
+    polys = {(r.stimulus, int(r.frame), r.aoi): shapely.from_wkt(r.wkt)
+             for r in aois.itertuples()}
+    t = s["t_ms"].to_numpy()
+    tr = assign_trials(t, trials)
+    fr = frame_index(t, tr, trials, study.stimuli)
+    xv, yv = screen_to_video(s["x_px"].to_numpy(), s["y_px"].to_numpy(), tr, trials,
+                             study.stimuli)
+    sel = np.flatnonzero((tr >= 0) & np.isfinite(xv))[:n_sub]
+    names = sorted(aois["aoi"].unique())
+    t0 = time.perf_counter()
+    labels = []
+    for i in sel:  # the naive per-sample loop this benchmark compares against
+        stim = trials["stimulus"].iat[tr[i]]
+        p = Point(xv[i], yv[i])
+        hit = None
+        for name in names:
+            g = polys.get((stim, int(fr[i]), name))
+            if g is not None and g.contains(p):
+                hit = name
+                break
+        labels.append(hit)
+    return (time.perf_counter() - t0) / max(len(sel), 1)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description="aoi_fix benchmarks (ratios)")
+    ap.add_argument("--small", type=int, default=400_000)
+    ap.add_argument("--big", type=int, default=2_000_000)
+    args = ap.parse_args(argv)
+    OUT.mkdir(parents=True, exist_ok=True)
+    aoi_fix = str(BIN / "aoi-fix")
+    py = sys.executable
+    res = {}
+    for label, n in (("small", args.small), ("big", args.big)):
+        folder = OUT / f"session_{label}"
+        paths = make_session(n, folder)
+        n = paths["n"]
+        s, st, tr, ao = (str(paths[k]) for k in ("samples", "study", "trials", "aois"))
+        read = _best([py, "-c", f"import pyarrow.csv as c; c.read_csv({s!r})"])
+        ivt = _best([aoi_fix, "fixations", s, "--study", st, "--out", str(folder / "f.csv")])
+        idt = _best([aoi_fix, "fixations", s, "--study", st, "--out", str(folder / "f2.csv"),
+                     "--set", "detection.method=idt"])
+        conv = _best([aoi_fix, "convert", s, "--study", st, "--trials", tr, "--aois", ao,
+                      "--out-dir", str(folder / "out")])
+        res[label] = dict(n=n, read=read[0], ivt=ivt[0], idt=idt[0], convert=conv[0],
+                          convert_mb=conv[1], fix_mb=ivt[1], paths=paths)
+        print(f"{label}: {n} samples  read {read[0]:.2f}s  fixations(ivt) {ivt[0]:.2f}s  "
+              f"fixations(idt) {idt[0]:.2f}s  convert {conv[0]:.2f}s  "
+              f"peak convert {conv[1]:.0f} MB", flush=True)
+    a, b = res["small"], res["big"]
+    dn = b["n"] - a["n"]
+
+    def marg(k):
+        return (b[k] - a[k]) / dn
+
+    naive = naive_loop_seconds_per_sample(b["paths"])
+    start = min(_child([aoi_fix, "--version"])[0] for _ in range(3))
+    helps = min(_child([aoi_fix, "--help"])[0] for _ in range(3))
+    print("\nratios of marginal cost per sample (targets in brackets):")
+    print(f"  fixations (I-VT) / pyarrow read_csv : {marg('ivt') / marg('read'):.2f}  [<= 2.0]")
+    print(f"  convert / pyarrow read_csv          : {marg('convert') / marg('read'):.2f}  "
+          "[<= 2.0-2.5]")
+    print(f"  fixations I-DT / I-VT               : {marg('idt') / marg('ivt'):.2f}  [<= 1.5]")
+    print(f"  naive per-sample shapely loop / convert: {naive / marg('convert'):.0f}x  "
+          "[>= 100x]")
+    print(f"  time per sample big/small (convert) : "
+          f"{(b['convert'] / b['n']) / (a['convert'] / a['n']):.2f}  [<= 1, linear]")
+    print(f"  peak memory convert at {b['n']}: {b['convert_mb']:.0f} MB "
+          f"= {b['convert_mb'] / (b['n'] / 1e6):.0f} MB per million samples [<= 150]")
+    print(f"  peak memory fixations: {b['fix_mb']:.0f} MB [< 800]")
+    print(f"  start-up: --version {start:.2f}s, --help {helps:.2f}s [<= 0.5 s]")
+    # profile of the largest case
+    from aoi_fix.pipeline import convert
+
+    prof = cProfile.Profile()
+    p = b["paths"]
+    prof.enable()
+    convert(p["samples"], study=p["study"], trials=p["trials"], aois=p["aois"])
+    prof.disable()
+    buf = io.StringIO()
+    pstats.Stats(prof, stream=buf).sort_stats("cumulative").print_stats(15)
+    (OUT / "profile_convert.txt").write_text(buf.getvalue())
+    print(f"  profile: {OUT / 'profile_convert.txt'}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

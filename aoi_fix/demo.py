@@ -18,20 +18,27 @@ __all__ = ["run_demo"]
 
 
 def run_demo(directory: str | Path, *, n_trials: int = 4, seed: int = 2026,
-             fmt: str = "csv") -> dict:
+             fmt: str = "csv", plots: bool | None = None) -> dict:
     """Write the demo inputs to ``directory/inputs`` and convert them to ``directory/out``.
 
-    Returns the ``convert`` tables plus ``paths`` (the input files).
+    Returns the ``convert`` tables plus ``paths`` (the input files).  QC
+    figures are drawn when matplotlib is installed (``plots=None``) or asked for.
     """
     from . import simulate
     from .pipeline import convert
 
     directory = Path(directory)
+    if plots is None:
+        try:
+            import matplotlib  # noqa: F401
+            plots = True
+        except ImportError:
+            plots = False
     ses = simulate.simulate_session("infant_60hz_noisy", n_trials=n_trials, seed=seed)
     paths = simulate.write_session(ses, directory / "inputs")
     tables = convert(paths["samples"], study=paths["study"], trials=paths["trials"],
                      aois=paths["aois"], checks=paths.get("checks"),
-                     out_dir=directory / "out", fmt=fmt)
+                     out_dir=directory / "out", fmt=fmt, plots=plots)
     tables["paths"] = paths
     return tables
 

@@ -349,8 +349,14 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
 OUTPUT_TABLES = ("fixations", "aoi_summary", "trial_quality")
 
 
-def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv") -> list[Path]:
-    """Write the public tables and ``manifest.json`` atomically (all or none)."""
+def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv", *,
+                  session: Session | None = None, plots: bool = False) -> list[Path]:
+    """Write the public tables and ``manifest.json`` atomically (all or none).
+
+    With ``plots`` (and the session), also ``qc_quality.png`` (offset and
+    validity over the session) and ``qc_trial_<first trial>.png`` (its gaze
+    over the AOIs).
+    """
     out_dir = Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
         raise OutputError(f"{out_dir}: expected an output folder, found a file")
@@ -361,11 +367,22 @@ def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv") -> list[P
                 written.append(w.table(tables[name], out_dir / f"{name}{table_suffix(fmt)}",
                                        fmt))
         written.append(w.json(tables["manifest"], out_dir / "manifest.json"))
+        if plots and session is not None and len(session.trials):
+            from . import plots as qc
+
+            q = session.study.quality
+            written.append(w.file(out_dir / "qc_quality.png", lambda p: qc.quality_timeline(
+                tables["trial_quality"], tables.get("check_quality"), session.trials, p,
+                max_offset_deg=q.max_offset_deg, min_valid_fraction=q.min_valid_fraction)))
+            name = str(session.trials["trial"].iat[0])
+            written.append(w.file(out_dir / f"qc_trial_{name}.png", lambda p: qc.trial_gaze(
+                session.samples, tables["fixations"], session.trials, session.aois,
+                session.study.stimuli, 0, p)))
     return written
 
 
 def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str = "csv",
-            overrides=()) -> dict:
+            overrides=(), plots: bool = False) -> dict:
     """Convert one session: fixations, AOI per fixation, per-trial tables.
 
     Parameters
@@ -379,6 +396,8 @@ def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str
         Folder for ``fixations``, ``aoi_summary``, ``trial_quality`` and
         ``manifest.json``; nothing is written when omitted.
     fmt : {"csv", "parquet"}
+    plots : bool
+        Also write QC figures (needs matplotlib, the ``plots`` extra).
 
     Returns
     -------
@@ -386,8 +405,11 @@ def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str
         ``fixations``, ``aoi_summary``, ``trial_quality`` DataFrames and the
         ``manifest`` dict.
     """
+    if plots:
+        from .plots import require_matplotlib
+        require_matplotlib()
     session = load_session(samples, study, trials, aois, checks, overrides=overrides)
     tables = convert_session(session)
     if out_dir is not None:
-        write_outputs(tables, out_dir, fmt)
+        write_outputs(tables, out_dir, fmt, session=session, plots=plots)
     return {k: v for k, v in tables.items() if not k.startswith("_")}

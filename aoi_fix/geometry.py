@@ -29,6 +29,7 @@ __all__ = [
     "px_to_deg",
     "angle_between_deg",
     "deg_to_px",
+    "deg_to_xy_px",
 ]
 
 
@@ -91,3 +92,20 @@ def deg_to_px(angle_deg, display: "Display") -> tuple[float, float]:
     size_mm = 2.0 * display.distance_mm * np.tan(np.radians(np.asarray(angle_deg, float)) / 2.0)
     px_w, px_h = pixel_pitch_mm(display)
     return size_mm / px_w, size_mm / px_h
+
+
+def deg_to_xy_px(ax_deg, ay_deg, display: "Display"):
+    """Inverse of :func:`px_to_deg`: per-axis angles (deg) to screen px.
+
+    >>> from aoi_fix.config import Display
+    >>> d = Display(width_px=1000, height_px=800, width_mm=500.0, height_mm=400.0,
+    ...             distance_mm=600.0)
+    >>> ax, ay = px_to_deg(123.0, 456.0, d)
+    >>> [round(float(v), 9) for v in deg_to_xy_px(ax, ay, d)]
+    [123.0, 456.0]
+    """
+    px_w, px_h = pixel_pitch_mm(display)
+    d = float(display.distance_mm)
+    x_mm = d * np.tan(np.radians(np.asarray(ax_deg, dtype=float)))
+    y_mm = d * np.tan(np.radians(np.asarray(ay_deg, dtype=float)))
+    return x_mm / px_w + display.width_px / 2.0, y_mm / px_h + display.height_px / 2.0

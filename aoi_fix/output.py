@@ -62,7 +62,8 @@ def read_table(path: str | Path) -> pd.DataFrame:
     path = Path(path)
     if path.suffix == ".parquet":
         return pd.read_parquet(path)
-    return pd.read_csv(path, keep_default_na=False, na_values=[""])
+    text_cols = {c: "string" for c in ("trial", "stimulus", "aoi", "session", "status")}
+    return pd.read_csv(path, keep_default_na=False, na_values=[""], dtype=text_cols)
 
 
 class AtomicOutputs:

@@ -310,16 +310,16 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         else:
             xm, ym = _full_interpolation(session.samples)
         if corrected:
-            dx, dy = model(t)
-            xm, ym = xm - dx, ym - dy
+            from .quality import correct_positions
+            xm, ym = correct_positions(xm, ym, t, model, study.display)
         in_fix = fixation_of_sample(len(t), fixations) >= 0
         matched = match_session(session, x_px=xm, y_px=ym, rows=in_fix, base=matched)
     if corrected:
         fixations = fixations.copy()
         mid = (fixations["onset_ms"].to_numpy(float) + fixations["offset_ms"].to_numpy(float)) / 2
-        fdx, fdy = model(mid)
-        fixations["x_px"] = fixations["x_px"] - fdx
-        fixations["y_px"] = fixations["y_px"] - fdy
+        fixations["x_px"], fixations["y_px"] = correct_positions(
+            fixations["x_px"].to_numpy(float), fixations["y_px"].to_numpy(float), mid, model,
+            study.display)
     tables = summarise(session, matched, fixations, filled)
     from .quality import trial_drift
     drift = trial_drift(session.trials, check_table, display=study.display,

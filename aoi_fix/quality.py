@@ -20,11 +20,11 @@ one with the most time inside the window (ties: the closest to the target).
 A check without such a fixation is reported with ``status = "no fixation"``
 (or ``"no data"`` when no sample in the window is valid), never dropped.
 
-Drift model: the offset vector (gaze minus target, display px) of each usable
-check, placed at the check's mid-time, linearly interpolated in time between
-checks and held constant before the first and after the last.  A trial's
-``offset_deg`` is the size of the modelled vector at the trial's mid-time,
-as a visual angle at the display centre.
+Drift model: the per-axis angular offset (gaze minus target, deg) of each
+usable check, placed at the check's mid-time, linearly interpolated in time
+between checks and held constant before the first and after the last.  A
+trial's ``offset_deg`` is the size of the modelled offset at the trial's
+mid-time, as a visual angle from the display centre.
 
 References
 ----------
@@ -45,7 +45,8 @@ import pandas as pd
 from . import geometry
 from .errors import InputFormatError, where
 
-__all__ = ["read_checks", "check_quality", "drift_model", "trial_drift", "precision_deg"]
+__all__ = ["read_checks", "check_quality", "drift_model", "correct_positions", "trial_drift",
+           "precision_deg"]
 
 CHECK_COLUMNS = ("onset", "offset", "x_px", "y_px")
 
@@ -196,23 +197,32 @@ def check_quality(checks: pd.DataFrame, samples: pd.DataFrame, fixations: pd.Dat
 
 
 def drift_model(check_table: pd.DataFrame):
-    """The drift model as a function ``t_ms -> (dx_px, dy_px)`` (None without usable checks).
+    """The drift model as a function ``t_ms -> (dx_deg, dy_deg)`` (None without usable checks).
 
-    Offsets (gaze minus target) at check mid-times, interpolated linearly
-    between checks and held at the ends.
+    Per-axis angular offsets (gaze minus target) at check mid-times,
+    interpolated linearly between checks and held at the ends.  Offsets are
+    modelled in degrees, not pixels: a fixed angular error covers more pixels
+    away from the display centre.
     """
     ok = check_table["status"].to_numpy() == "ok"
     if not ok.any():
         return None
     tc = ((check_table["onset_ms"] + check_table["offset_ms"]) / 2.0).to_numpy(float)[ok]
-    dx = (check_table["gaze_x_px"] - check_table["target_x_px"]).to_numpy(float)[ok]
-    dy = (check_table["gaze_y_px"] - check_table["target_y_px"]).to_numpy(float)[ok]
+    dx = check_table["offset_x_deg"].to_numpy(float)[ok]
+    dy = check_table["offset_y_deg"].to_numpy(float)[ok]
 
     def offset_at(t_ms):
         t_ms = np.asarray(t_ms, dtype=float)
         return np.interp(t_ms, tc, dx), np.interp(t_ms, tc, dy)
 
     return offset_at
+
+
+def correct_positions(x_px, y_px, t_ms, model, display):
+    """Subtract the modelled per-axis angular offset from gaze positions (px in, px out)."""
+    ax, ay = geometry.px_to_deg(x_px, y_px, display)
+    dx, dy = model(t_ms)
+    return geometry.deg_to_xy_px(ax - dx, ay - dy, display)
 
 
 def trial_drift(trials: pd.DataFrame, check_table: pd.DataFrame | None, *, display,
@@ -233,7 +243,8 @@ def trial_drift(trials: pd.DataFrame, check_table: pd.DataFrame | None, *, displ
         return out
     dx, dy = model(mid)
     cx, cy = display.width_px / 2.0, display.height_px / 2.0
-    off = geometry.angle_between_deg(cx, cy, cx + dx, cy + dy, display)
+    px, py = geometry.deg_to_xy_px(dx, dy, display)
+    off = geometry.angle_between_deg(cx, cy, px, py, display)
     ok = check_table[check_table["status"] == "ok"]
     tc = ((ok["onset_ms"] + ok["offset_ms"]) / 2.0).to_numpy(float)
     nearest = np.abs(mid[:, None] - tc[None, :]).argmin(axis=1)

@@ -91,13 +91,15 @@ def convert(
     out_dir: Path = typer.Option(..., "--out-dir", help="Folder for the output tables."),
     set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
     fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+    plots: bool = typer.Option(False, "--plots", help="Also write QC figures (needs the "
+                                                       "plots extra: matplotlib)."),
 ) -> None:
     """Convert one session: fixations, AOI hits on moving regions, per-trial tables."""
     from .pipeline import convert as run
 
     _check_format(fmt)
     tables = run(samples, study=study, trials=trials, aois=aois, checks=checks,
-                 out_dir=out_dir, fmt=fmt, overrides=set_ or ())
+                 out_dir=out_dir, fmt=fmt, overrides=set_ or (), plots=plots)
     n = tables["manifest"]["samples"]
     typer.echo(f"{len(tables['fixations'])} fixations, {len(tables['trial_quality'])} trials, "
                f"{n['total']} samples accounted for; tables in {out_dir}", err=True)
@@ -124,6 +126,41 @@ def demo(
     typer.echo(f"\nInputs: {Path(directory) / 'inputs'}\nTables: {Path(directory) / 'out'}")
     typer.echo("Research tool, not a diagnostic device: any clinical decision belongs to "
                "qualified clinicians under local rules.")
+
+
+@app.command()
+@handle_errors
+def sweep(
+    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
+    trials: Path = typer.Option(..., "--trials", help="Trial table: trial, stimulus, start, end."),
+    aois: Path = typer.Option(..., "--aois", help="AOI table (CSV with WKT, or GeoJSON)."),
+    checks: Optional[Path] = typer.Option(None, "--checks",
+                                          help="Calibration-check targets: onset, offset, "
+                                               "x_px, y_px."),
+    grid: List[str] = typer.Option(..., "--grid",
+                                   help="Study key and the values to try, e.g. "
+                                        "detection.min_fixation_ms=60,100 (repeatable; "
+                                        "every combination is run)."),
+    out_dir: Path = typer.Option(..., "--out-dir", help="Folder for the sweep tables."),
+    jobs: int = typer.Option(1, "-j", "--jobs", help="Worker processes (results do not "
+                                                     "depend on it)."),
+    set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
+    fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+    plots: bool = typer.Option(False, "--plots", help="Also draw one PNG per AOI (needs "
+                                                      "the plots extra)."),
+) -> None:
+    """Compare detection settings: AOI percentages under every combination of --grid."""
+    from .sweep import parse_grid
+    from .sweep import sweep as run
+
+    _check_format(fmt)
+    tables = run(samples, study=study, trials=trials, aois=aois, checks=checks,
+                 grid=parse_grid(grid), out_dir=out_dir, fmt=fmt, jobs=jobs,
+                 overrides=set_ or (), plots=plots)
+    stab = tables["sweep_stability"]
+    typer.echo(f"{len(tables['sweep_settings'])} settings; {int(stab['flag_unstable'].sum())} "
+               f"of {len(stab)} trial x AOI rows unstable; tables in {out_dir}", err=True)
 
 
 def main() -> None:  # console-script entry point

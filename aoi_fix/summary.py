@@ -11,9 +11,10 @@ Time weights
 ------------
 Each fixation sample carries the time to the next sample; the last sample of
 a fixation carries ``offset_ms - t`` so the weights of a fixation add up to its
-duration.  Weights are cut at trial boundaries: a fixation that runs across a
-trial's start or end is clipped, and its parts are listed (and counted in the
-manifest) separately.
+duration.  Weights are cut at trial boundaries, and the time cut off goes to
+the next sample of the same fixation on the other side: a fixation that runs
+across a trial's start or end is clipped exactly at the boundary, and its
+parts are listed (and counted in the manifest) separately.
 """
 
 from __future__ import annotations
@@ -66,7 +67,15 @@ def sample_weights(t_ms: np.ndarray, fid: np.ndarray, fixations: pd.DataFrame,
         nb = np.where(k < len(b), b[np.minimum(k, len(b) - 1)], np.inf)
         w = np.minimum(w, nb - t_ms)
     w[~is_fix] = 0.0
-    return np.maximum(w, 0.0)
+    w = np.maximum(w, 0.0)
+    # time a sample lost to a trial boundary goes to the next sample of the same
+    # fixation, on the other side of the boundary: a fixation in progress when
+    # a trial starts counts for the trial from its first millisecond
+    step = np.diff(t_ms)
+    carry = np.zeros(n)
+    cont = (fid[1:] == fid[:-1]) & is_fix[1:]
+    carry[1:] = np.where(cont, np.maximum(step - w[:-1], 0.0), 0.0)
+    return w + carry
 
 
 def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
@@ -94,8 +103,9 @@ def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
     first = idx[new]
     last = idx[np.append(new[1:], True)]
     n_parts = len(first)
-    onset = t_ms[first]
     offset = t_ms[last] + w[last]
+    # a part starts where its time starts (a trial boundary for a clipped part)
+    onset = offset - np.bincount(part, weights=w[idx], minlength=len(first))
     fx = fixations["x_px"].to_numpy(float)
     fy = fixations["y_px"].to_numpy(float)
     fixno = fixations["fixation"].to_numpy(np.int64)

@@ -77,8 +77,10 @@ def test_weights_are_cut_at_trial_boundaries():
     fx = _fix([1], [7], [10], [70])
     fid = fixation_of_sample(len(T10), fx)
     w = sample_weights(T10, fid, fx, np.array([25.0]))
-    # the sample at 20 would stand for 20..30; cut at 25 it stands for 5 ms only
-    assert w.tolist() == [0, 10, 5, 10, 10, 10, 10, 0, 0, 0]
+    # the sample at 20 would stand for 20..30; cut at 25 it stands for 5 ms only,
+    # and the 5 ms after the boundary go to the next sample of the fixation (30)
+    assert w.tolist() == [0, 10, 5, 15, 10, 10, 10, 0, 0, 0]
+    assert w.sum() == pytest.approx(60.0)  # still the fixation's duration
     # no weight ever reaches across a boundary
     assert np.all((T10 >= 25) | (T10 + w <= 25))
 
@@ -98,8 +100,9 @@ def test_fixation_spanning_two_trials_becomes_two_clipped_parts():
     fx = _fix([2], [8], [20], [80], x_px=[300.0], y_px=[400.0])
     fid = fixation_of_sample(len(T10), fx)
     w = sample_weights(T10, fid, fx, np.array([0.0, 45.0, 100.0]))
-    # weights: 20:10, 30:10, 40:min(10, 45-40)=5, 50:10, 60:10, 70:80-70=10
-    assert w[2:8].tolist() == [10, 10, 5, 10, 10, 10]
+    # weights: 20:10, 30:10, 40:min(10, 45-40)=5, 50:10 + the 5 ms after the
+    # boundary, 60:10, 70:80-70=10
+    assert w[2:8].tolist() == [10, 10, 5, 15, 10, 10]
     trial_idx = np.where(T10 < 45, 0, 1)
     code = np.array([-3, -3, 0, 1, 1, CODE_NONE, CODE_NONE, 0, -3, -3])
     parts = fixation_parts(T10, fid, trial_idx, w, code, fx, n_codes=2)
@@ -107,15 +110,15 @@ def test_fixation_spanning_two_trials_becomes_two_clipped_parts():
     assert parts["trial_row"].tolist() == [0, 1]
     assert parts["fixation"].tolist() == [1, 1]  # the detector's number, both parts
     # part 0: onset 20, offset 40 + 5 = 45 (clipped at the boundary)
-    # part 1: onset 50 (first sample inside trial 1), offset 80
-    assert parts["onset_ms"].tolist() == [20.0, 50.0]
+    # part 1: onset 45 (the boundary: the fixation was in progress), offset 80
+    assert parts["onset_ms"].tolist() == [20.0, 45.0]
     assert parts["offset_ms"].tolist() == [45.0, 80.0]
-    assert parts["duration_ms"].tolist() == [25.0, 30.0]
+    assert parts["duration_ms"].tolist() == [25.0, 35.0]
     assert parts["clipped"].tolist() == [True, True]
     # position of a part is that of the whole fixation
     assert parts["x_px"].tolist() == [300.0, 300.0] and parts["y_px"].tolist() == [400.0, 400.0]
     # majority by time: part 0 code 0 has 10 ms, code 1 has 10 + 5 = 15 ms -> 1;
-    # part 1 (none) has 20 ms, code 0 has 10 ms -> (none)
+    # part 1 (none) has 15 + 10 = 25 ms, code 0 has 10 ms -> (none)
     assert parts["code"].tolist() == [1, CODE_NONE]
     # parts never overlap and stay inside their trial windows
     assert parts["offset_ms"].iat[0] <= 45.0 <= parts["onset_ms"].iat[1]

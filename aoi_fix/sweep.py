@@ -419,11 +419,13 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     if gap_key not in cache:
         for k in [k for k in cache if k[0] == "filled"]:  # keep one filled frame
             del cache[k]
+        for k in [k for k in cache if k[0] == "velocity"]:  # belongs to that frame
+            del cache[k]
         cache[gap_key] = fill_gaps(session.samples, max_gap_ms=det.max_gap_ms,
                                    interval_ms=session.interval_ms)
     filled = cache[gap_key]
     fixations = detect_filled(filled, display=study.display, detection=det,
-                              interval_ms=session.interval_ms)
+                              interval_ms=session.interval_ms, cache=cache)
     t = session.samples["t_ms"].to_numpy(float)
     fid = fixation_of_sample(len(t), fixations)
     window = study.aois.position_window_ms

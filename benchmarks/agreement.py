@@ -7,7 +7,9 @@ Per style it simulates sessions (aoi_fix.simulate), writes them in the style's
 raw format, runs ``aoi_fix.convert`` on the files with default settings and
 reports:
 
-* sample-level Cohen's kappa on the fixation label (fixation vs not);
+* sample-level Cohen's kappa on the fixation label (fixation vs not), against
+  the measured label (dropouts are loss) and the eye's movement (dropouts
+  inside a fixation are fixation);
 * event-level F1 of fixations (one-to-one matches with IoU >= 0.5);
 * share of (trial, AOI) cells whose pct_fixation is within 3 points of truth;
 * largest |valid_fraction - truth|, largest |offset_deg - truth|;
@@ -40,9 +42,13 @@ def evaluate_session(style: str, *, n_trials: int, seed: int, overrides=(),
     study = study_from_dict(ses.study, overrides=overrides)
     t = ses.truth_samples["t_ms"].to_numpy(float)
     truth_fix = (ses.truth_samples["label"] == "fixation").to_numpy()
+    eye_fix = (ses.truth_samples["movement"] == "fixation").to_numpy()
     det = out["fixations"]
     det_mask = fixation_mask(t, det)
+    # two truths: what the measurement shows (a dropout inside a fixation is
+    # "loss") and what the eye did (the dropout is still part of the fixation)
     kappa = cohen_kappa(truth_fix, det_mask)
+    kappa_eye = cohen_kappa(eye_fix, det_mask)
     # event F1 on whole fixations: merge parts split at trial boundaries back
     whole = det.groupby("fixation", as_index=False).agg(onset_ms=("onset_ms", "min"),
                                                         offset_ms=("offset_ms", "max"))
@@ -72,7 +78,8 @@ def evaluate_session(style: str, *, n_trials: int, seed: int, overrides=(),
     acc = out["manifest"]["samples"]
     accounted = (acc["total"] == acc["valid"] + acc["gap_filled"] + acc["lost"]
                  == acc["inside_trials"] + acc["outside_trials"] == len(ses.raw))
-    return {"style": style, "seed": seed, "kappa": kappa, "event_f1": f1,
+    return {"style": style, "seed": seed, "kappa": kappa, "kappa_eye": kappa_eye,
+            "event_f1": f1,
             "pct_within_3": within3, "valid_fraction_max_err": vf_err,
             "low_validity_flags_ok": vflag_ok, "offset_deg_max_err": off_err,
             "drift_flags_ok": dflag_ok, "all_samples_accounted": bool(accounted),
@@ -96,7 +103,8 @@ def main(argv=None) -> int:
     df = pd.DataFrame(rows)
     pd.set_option("display.width", 200)
     print(df.drop(columns=["seed"]).groupby("style", sort=False).agg(
-        kappa=("kappa", "min"), event_f1=("event_f1", "min"),
+        kappa=("kappa", "min"), kappa_eye=("kappa_eye", "min"),
+        event_f1=("event_f1", "min"),
         pct_within_3=("pct_within_3", "min"),
         vf_err=("valid_fraction_max_err", "max"), off_err=("offset_deg_max_err", "max"),
         vflags=("low_validity_flags_ok", "all"), dflags=("drift_flags_ok", "all"),

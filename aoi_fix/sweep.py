@@ -270,51 +270,6 @@ def _placement(session):
     return match_session(session, rows=np.zeros(len(session.samples), dtype=bool))
 
 
-def _summary_rows(trials: pd.DataFrame, names_by_trial, trial_idx: np.ndarray,
-                  code: np.ndarray, w: np.ndarray, parts: pd.DataFrame) -> pd.DataFrame:
-    """The ``SUMMARY_COLUMNS`` of :func:`aoi_fix.summary.aoi_summary`, vectorised.
-
-    Same sums in the same order as ``aoi_summary`` (so the numbers are equal
-    to the last bit); counts of fixation parts by one ``bincount`` instead of
-    a filter per trial and AOI.
-    """
-    from .summary import CODE_NONE, CODE_OFF_VIDEO, NONE_LABEL, OFF_VIDEO_LABEL
-
-    in_trial = trial_idx >= 0
-    ti, ci, wi = trial_idx[in_trial], code[in_trial], w[in_trial]
-    n_tr = len(trials)
-    shift = -CODE_OFF_VIDEO
-    width = max((len(n) for n in names_by_trial), default=0) + shift
-    key = ti * width + (np.maximum(ci, CODE_OFF_VIDEO) + shift)
-    tot = np.bincount(key, weights=wi, minlength=n_tr * width).reshape(n_tr, width)
-    pr = parts["trial_row"].to_numpy(np.int64)
-    pc = parts["code"].to_numpy(np.int64)
-    keep = pr >= 0
-    pkey = pr[keep] * width + (np.maximum(pc[keep], CODE_OFF_VIDEO) + shift)
-    nfix = np.bincount(pkey, minlength=n_tr * width).reshape(n_tr, width)
-    row_trial, labels, fix_parts, pct_parts, n_parts = [], [], [], [], []
-    for k in range(n_tr):  # a loop over trials
-        names = names_by_trial[k]
-        cols = np.array(list(range(len(names))) + [CODE_NONE, CODE_OFF_VIDEO]) + shift
-        fix_ms = np.array([tot[k, c] for c in cols])
-        total = fix_ms.sum()
-        fix_parts.append(fix_ms)
-        pct_parts.append(100.0 * fix_ms / total if total > 0 else np.full(len(cols), np.nan))
-        n_parts.append(nfix[k, cols])
-        labels.extend(list(names) + [NONE_LABEL, OFF_VIDEO_LABEL])
-        row_trial.append(np.full(len(cols), k))
-    rows = np.concatenate(row_trial) if row_trial else np.zeros(0, dtype=np.int64)
-    cat = (lambda parts_, dtype: np.concatenate(parts_) if parts_ else np.zeros(0, dtype))
-    return pd.DataFrame({
-        "trial": trials["trial"].to_numpy(object)[rows],
-        "stimulus": trials["stimulus"].to_numpy(object)[rows],
-        "aoi": np.array(labels, dtype=object),
-        "pct_fixation": cat(pct_parts, float),
-        "fixation_ms": cat(fix_parts, float),
-        "n_fixations": cat(n_parts, np.int64).astype(np.int64),
-    }, columns=SUMMARY_COLUMNS)
-
-
 def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.DataFrame,
                      fid: np.ndarray, window_ms: float, store: dict):
     """AOI codes of the fixation samples at window-averaged positions, reusing known fixations.
@@ -400,7 +355,7 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     from .clean import fill_gaps
     from .detect import detect_filled
     from .pipeline import _boundaries, _full_interpolation, load_session, match_session
-    from .summary import fixation_of_sample, fixation_parts, sample_weights
+    from .summary import aoi_summary, fixation_of_sample, fixation_parts, sample_weights
 
     study = setting.study
     if setting.reload:
@@ -442,8 +397,8 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     w = sample_weights(t, fid, fixations, _boundaries(session.trials))
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes)
-    summary = _summary_rows(session.trials, matched.names_by_trial, matched.trial_idx,
-                            matched.code, w, parts)
+    summary = aoi_summary(session.trials, matched.names_by_trial, matched.trial_idx,
+                          matched.code, w, parts)[SUMMARY_COLUMNS]
     inside = parts["trial_row"].to_numpy() >= 0
     dur = parts["duration_ms"].to_numpy(float)[inside]
     trial_ms = float((session.trials["end_ms"] - session.trials["start_ms"]).sum())

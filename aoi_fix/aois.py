@@ -63,6 +63,7 @@ import numpy as np
 import pandas as pd
 import shapely
 
+from . import keyframes as _kf
 from .errors import ConfigError, InputFormatError, where
 from .trials import _read_rows
 
@@ -90,9 +91,10 @@ _DENSE_MAX_RATIO = 64
 class _Track:
     """Geometry of one AOI of one stimulus: fixed, or one polygon per listed frame."""
 
-    __slots__ = ("static", "frames", "geoms", "lookup", "median_area", "_buffered")
+    __slots__ = ("static", "frames", "geoms", "lookup", "median_area", "_buffered", "hold")
 
-    def __init__(self, frames: np.ndarray, geoms: np.ndarray):
+    def __init__(self, frames: np.ndarray, geoms: np.ndarray, hold: bool = False):
+        self.hold = hold  # the last polygon also holds for every later frame (keyframes)
         self._buffered: dict[float, tuple] = {}
         if frames.size == 1 and frames[0] < 0:
             self.static = geoms[0]
@@ -107,6 +109,7 @@ class _Track:
             if max_frame + 2 <= _DENSE_MAX_RATIO * frames.size + 4096:
                 lookup = np.full(max_frame + 2, -1, dtype=np.int64)
                 lookup[frames] = np.arange(frames.size)
+                lookup[-1] = frames.size - 1 if hold else -1
                 self.lookup = lookup
             else:
                 self.lookup = None
@@ -118,7 +121,8 @@ class _Track:
             return self.lookup[np.minimum(frame, self.lookup.size - 1)]
         pos = np.searchsorted(self.frames, frame)
         safe = np.minimum(pos, self.frames.size - 1)
-        return np.where(self.frames[safe] == frame, safe, -1)
+        return np.where((self.frames[safe] == frame) | (self.hold & (frame > self.frames[-1])),
+                        safe, -1)
 
     def buffered(self, margin_px: float):
         """(geoms, minx, miny, maxx, maxy) grown by the margin, prepared; cached."""
@@ -149,7 +153,9 @@ class AoiTable:
     columns ``stimulus`` (str), ``frame`` (int >= 0, or -1 / NA for every
     frame), ``aoi`` (str) and ``geometry`` (shapely Polygon or
     MultiPolygon); an optional ``location`` column names each row's origin
-    for error messages.  The table is read-only; its internal order is
+    for error messages, and an optional ``hold`` column (bool) set on an
+    AOI's last frame makes that polygon hold for all later frames (keyframes,
+    :mod:`aoi_fix.keyframes`).  The table is read-only; its internal order is
     sorted, so nothing depends on the row order it was built from.
 
     Examples
@@ -177,6 +183,7 @@ class AoiTable:
             "location": (rows["location"].astype(str).to_numpy() if "location" in rows
                          else [f"index {i}" for i in range(len(rows))]),
             "ordinal": np.arange(len(rows)),
+            "hold": rows["hold"].to_numpy(bool) if "hold" in rows else np.zeros(len(rows), bool),
         })
         if (df["frame"] < -1).any():
             raise ValueError("AoiTable: frames must be >= 0, or -1 / NA for every frame")
@@ -187,7 +194,8 @@ class AoiTable:
         tracks: dict[str, dict[str, _Track]] = {}
         for (stim, aoi), g in df.groupby(["stimulus", "aoi"], sort=True):
             tracks.setdefault(stim, {})[aoi] = _Track(g["frame"].to_numpy(np.int64),
-                                                      g["geometry"].to_numpy(object))
+                                                      g["geometry"].to_numpy(object),
+                                                      bool(g["hold"].iat[-1]))
         object.__setattr__(self, "_tracks", tracks)
 
     def __setattr__(self, name, value):
@@ -400,7 +408,7 @@ def _check_geometries(geoms: np.ndarray, locs: Sequence[str], texts: Sequence[st
     raise InputFormatError(f"{loc}: {msg}")
 
 
-def _read_csv(path: Path, stimuli: Mapping):
+def _read_csv(path: Path, stimuli: Mapping, problems=None):
     header, header_line, rows = _read_rows(path, "AOI")
     missing = [c for c in _CSV_COLUMNS if c not in header]
     if missing:
@@ -411,6 +419,7 @@ def _read_csv(path: Path, stimuli: Mapping):
         raise InputFormatError(f"{path}: no AOI rows after the header; expected one "
                                "polygon per row")
     col = {c: header.index(c) for c in _CSV_COLUMNS}
+    kinds = _kf.csv_kinds(header, rows, path)  # keyframe / absent rows (keyframes.py)
     stims, frames, names, texts, locs = [], [], [], [], []
     for line, cells in rows:
         def cell(name: str) -> str:
@@ -431,9 +440,9 @@ def _read_csv(path: Path, stimuli: Mapping):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         geoms = shapely.from_wkt(np.array(texts, dtype=object), on_invalid="ignore")
-    geoms = _check_geometries(np.asarray(geoms, dtype=object), locs, texts)
+    geoms, kinds = _kf.check_present(_check_geometries, geoms, locs, texts, kinds, problems)
     location = [f"row {line}" for line, _ in rows]
-    return stims, frames, names, geoms, location
+    return stims, frames, names, geoms, location, kinds
 
 
 def _ring_check(ring, loc: str, what: str) -> None:
@@ -453,7 +462,7 @@ def _ring_check(ring, loc: str, what: str) -> None:
                                "(RFC 7946)")
 
 
-def _read_geojson(path: Path, stimuli: Mapping):
+def _read_geojson(path: Path, stimuli: Mapping, problems=None):
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except FileNotFoundError:
@@ -477,7 +486,7 @@ def _read_geojson(path: Path, stimuli: Mapping):
     if not isinstance(feats, list) or not feats:
         raise InputFormatError(f"{path}: key 'features': found no features, expected one "
                                "Polygon or MultiPolygon feature per AOI and frame")
-    stims, frames, names, geoms, locs, texts = [], [], [], [], [], []
+    stims, frames, names, geoms, locs, texts, kinds = [], [], [], [], [], [], []
     for i, f in enumerate(feats):
         loc = f"{path}: features[{i}]"
         if not isinstance(f, dict) or f.get("type") != "Feature":
@@ -497,6 +506,12 @@ def _read_geojson(path: Path, stimuli: Mapping):
                                    f"{props['frame']!r}, expected a JSON number or null")
         name = _check_name(props["aoi"], loc, "property 'aoi'", "AOI")
         g = f.get("geometry")
+        kinds.append(_kf.geojson_kind(props, g, loc))
+        if kinds[-1] == _kf.ABSENT:  # an absent keyframe: "geometry": null
+            for lst, v in zip((stims, frames, names, geoms, locs, texts),
+                              (stim, frame, name, None, loc, "absent")):
+                lst.append(v)
+            continue
         gtype = g.get("type") if isinstance(g, dict) else None
         if gtype not in ("Polygon", "MultiPolygon"):
             raise InputFormatError(f"{loc}: found geometry type {gtype!r}, expected "
@@ -521,12 +536,12 @@ def _read_geojson(path: Path, stimuli: Mapping):
         names.append(name)
         locs.append(loc)
         texts.append(gtype)
-    geoms = _check_geometries(np.asarray(geoms, dtype=object), locs, texts)
+    geoms, kinds = _kf.check_present(_check_geometries, geoms, locs, texts, kinds, problems)
     location = [f"features[{i}]" for i in range(len(feats))]
-    return stims, frames, names, geoms, location
+    return stims, frames, names, geoms, location, kinds
 
 
-def read_aois(path, *, stimuli: Mapping) -> AoiTable:
+def read_aois(path, *, stimuli: Mapping, problems: list | None = None) -> AoiTable:
     """Read AOI polygons per stimulus and frame from CSV (WKT) or GeoJSON.
 
     Parameters
@@ -539,6 +554,12 @@ def read_aois(path, *, stimuli: Mapping) -> AoiTable:
         formats and conventions.
     stimuli : Mapping[str, Stimulus]
         ``study.stimuli``: every stimulus named in the file needs an entry.
+    problems : list, optional
+        Lenient mode for ``aoi-fix aois check``: invalid polygons and
+        keyframes that cannot be interpolated are appended here (dicts)
+        and left out instead of raising.  AOIs drawn on keyframes (optional
+        ``keyframe`` column or property) are expanded into per-frame
+        polygons: see :mod:`aoi_fix.keyframes` and ``docs/keyframes.md``.
 
     Returns
     -------
@@ -570,11 +591,12 @@ def read_aois(path, *, stimuli: Mapping) -> AoiTable:
     if not path.exists():
         raise InputFormatError(f"{path}: AOI file not found")
     if path.suffix.lower() in (".geojson", ".json"):
-        stims, frames, names, geoms, location = _read_geojson(path, stimuli)
+        stims, frames, names, geoms, location, kinds = _read_geojson(path, stimuli, problems)
     else:
-        stims, frames, names, geoms, location = _read_csv(path, stimuli)
+        stims, frames, names, geoms, location, kinds = _read_csv(path, stimuli, problems)
     df = pd.DataFrame({"stimulus": stims, "frame": np.asarray(frames, dtype=np.int64),
-                       "aoi": names, "geometry": geoms, "location": location})
+                       "aoi": names, "geometry": geoms, "location": location, "kind": kinds})
+    df = _kf.expand_keyframes(df, source=str(path), problems=problems)  # keyframes.py
     return AoiTable(df, source=str(path))
 
 

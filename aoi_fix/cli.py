@@ -49,6 +49,8 @@ def handle_errors(fn):
             return fn(*args, **kwargs)
         except AoiFixError as e:
             _fail(str(e).splitlines()[0] if str(e) else type(e).__name__, e.exit_code)
+        except typer.BadParameter as e:  # raised by our own option checks: one line, exit 2
+            _fail(e.format_message().splitlines()[0], 2)
         except MemoryError:
             _fail("out of memory", 1)
     return wrapper
@@ -161,6 +163,124 @@ def sweep(
     stab = tables["sweep_stability"]
     typer.echo(f"{len(tables['sweep_settings'])} settings; {int(stab['flag_unstable'].sum())} "
                f"of {len(stab)} trial x AOI rows unstable; tables in {out_dir}", err=True)
+
+
+aois_app = typer.Typer(no_args_is_help=True, help="Work with AOI files on their own.")
+app.add_typer(aois_app, name="aois")
+
+
+def _parse_frames(text: Optional[str]) -> Optional[List[int]]:
+    if not text:
+        return None
+    try:
+        frames = [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        frames = [-1]
+    if not frames or min(frames) < 0:
+        raise typer.BadParameter(f"found {text!r}, expected frame numbers >= 0 separated by "
+                                 "commas, e.g. 0,10,20", param_hint="--frames")
+    return frames
+
+
+@aois_app.command("check")
+@handle_errors
+def aois_check(
+    aois: Path = typer.Argument(..., help="AOI table (CSV with WKT, or GeoJSON; keyframes "
+                                          "allowed)."),
+    study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
+    plots: bool = typer.Option(False, "--plots", help="Also draw one contact sheet PNG per "
+                                                      "stimulus (needs --out and matplotlib)."),
+    frames: Optional[str] = typer.Option(None, "--frames", help="Frames on the contact "
+                                                                "sheets, e.g. 0,10,20 "
+                                                                "(default: six spread out)."),
+    out: Optional[Path] = typer.Option(None, "--out", help="Folder for aoi_check.csv and the "
+                                                           "contact sheets."),
+) -> None:
+    """Check an AOI file without samples: invalid polygons, overlaps, off-video, gaps."""
+    import pandas as pd
+
+    from .aoicheck import ERROR_CHECKS, run_check
+
+    findings = run_check(aois, study=study, out_dir=out, plots=plots,
+                         frames=_parse_frames(frames))
+    n_err = int(findings["check"].isin(ERROR_CHECKS).sum())
+    if len(findings):
+        with pd.option_context("display.width", 160, "display.max_columns", 20,
+                               "display.max_colwidth", 40):
+            typer.echo(findings.drop(columns=["message"]).to_string())
+        typer.echo("")
+        for i, msg in enumerate(findings["message"]):
+            typer.echo(f"{i}: {findings['severity'].iat[i]}: {msg}")
+    typer.echo(f"{n_err} error(s), {len(findings) - n_err} warning(s) in {aois}"
+               + (f"; results in {out}" if out is not None else ""), err=True)
+    if n_err:
+        raise typer.Exit(1)
+
+
+@app.command()
+@handle_errors
+def batch(
+    sessions: Path = typer.Argument(..., help="Session table (CSV): session, samples, trials "
+                                              "and optionally checks, study."),
+    study: Path = typer.Option(..., "--study", help="Study file (TOML) for sessions without "
+                                                    "their own."),
+    aois: Path = typer.Option(..., "--aois", help="AOI table (CSV with WKT, or GeoJSON) for "
+                                                  "every session."),
+    out_dir: Path = typer.Option(..., "--out-dir", help="Folder for session=<id>/, dataset/ "
+                                                        "and batch_report.csv."),
+    jobs: int = typer.Option(1, "-j", "--jobs", help="Worker processes (results do not "
+                                                     "depend on it)."),
+    fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
+    force: bool = typer.Option(False, "--force", help="Convert every session again, even "
+                                                      "those already up to date."),
+    set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler",
+                                            help="Run the sessions on a Dask distributed "
+                                                 "scheduler at this address (needs the "
+                                                 "cluster extra)."),
+) -> None:
+    """Convert a cohort: every session of a table, incremental, parallel, one report."""
+    from .batch import batch as run
+
+    _check_format(fmt)
+    try:
+        from rich.console import Console
+        from rich.progress import Progress
+        console = Console(stderr=True)
+    except ImportError:  # pragma: no cover - rich comes with typer
+        console = None
+    bar: dict = {}
+
+    def progress(done: int, total: int, row) -> None:
+        if console is not None and console.is_terminal:
+            if "p" not in bar:
+                bar["p"] = Progress(console=console)
+                bar["p"].start()
+                bar["task"] = bar["p"].add_task("sessions", total=total)
+            if row is not None:
+                bar["p"].update(bar["task"], completed=done,
+                                description=f"{row['session']}: {row['status']}")
+                if row["status"] == "failed":
+                    bar["p"].console.print(f"{row['session']}: failed: {row['message']}",
+                                           markup=False, highlight=False)
+        elif row is not None:
+            tail = f": {row['message']}" if row["status"] == "failed" else ""
+            typer.echo(f"[{done}/{total}] {row['session']}: {row['status']} "
+                       f"({row['seconds']:.1f} s){tail}", err=True)
+
+    try:
+        report = run(sessions, study=study, aois=aois, out_dir=out_dir, jobs=jobs, fmt=fmt,
+                     force=force, overrides=set_ or (), scheduler=scheduler,
+                     progress=progress)
+    finally:
+        if "p" in bar:
+            bar["p"].stop()
+    n = report["status"].value_counts()
+    typer.echo(f"{n.get('converted', 0)} converted, {n.get('skipped', 0)} skipped, "
+               f"{n.get('failed', 0)} failed; report in {out_dir / 'batch_report.csv'}",
+               err=True)
+    if n.get("failed", 0):
+        raise typer.Exit(1)
 
 
 def main() -> None:  # console-script entry point

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
-from .errors import ConfigError, UsageError
+from .errors import ConfigError, OverrideError, UsageError
 
 __all__ = [
     "Display",
@@ -100,7 +100,9 @@ class SampleColumns:
 class Detection:
     """Fixation detection: method, thresholds and post-processing."""
 
-    method: str = _opt("ivt", doc="ivt (velocity) or idt (dispersion)", choices=("ivt", "idt"))
+    method: str = _opt("ivt", doc="ivt (velocity), idt (dispersion) or ivt_pursuit (velocity "
+                                  "for saccades, fitted gaze speed for pursuit)",
+                       choices=("ivt", "idt", "ivt_pursuit"))
     velocity_threshold_deg_s: float = _opt(
         30.0, doc="I-VT: lowest velocity threshold; raised to noise_factor x the "
                   "measured noise velocity when the data are noisier", min=0,
@@ -125,6 +127,18 @@ class Detection:
                                              "much time ...", min=0)
     merge_max_angle_deg: float = _opt(1.0, doc="... and at most this angle are merged "
                                                "(0 = never merge)", min=0)
+    saccade_threshold_deg_s: float = _opt(
+        60.0, doc="ivt_pursuit: lowest saccade threshold (velocity_threshold_deg_s is then "
+                  "the lower onset threshold a saccade's flanks are followed down to)",
+        min=0, min_inclusive=False)
+    pursuit_window_ms: float = _opt(200.0, doc="ivt_pursuit: window of the fitted gaze "
+                                               "speed", min=0, min_inclusive=False)
+    pursuit_min_speed_deg_s: float = _opt(1.5, doc="ivt_pursuit: slowest movement called "
+                                                   "pursuit", min=0)
+    pursuit_z: float = _opt(3.5, doc="ivt_pursuit: the fitted speed must be this many "
+                                     "standard errors above zero", min=0)
+    min_pursuit_ms: float = _opt(100.0, doc="ivt_pursuit: shorter pursuits become "
+                                            "fixation; must exceed merge_max_gap_ms", min=0)
 
 
 @dataclass(frozen=True)
@@ -134,6 +148,10 @@ class AoiOptions:
     margin_deg: float = _opt(0.0, doc="margin added around every AOI, in degrees", min=0)
     priority: tuple = _opt([], doc="order in which overlapping AOIs win; empty = "
                                    "smallest area first", kind=str)
+    looking_events: str = _opt("fixation", doc="what counts as looking time in the AOI "
+                                               "tables: fixation only, or fixation and "
+                                               "pursuit (ivt_pursuit)",
+                               choices=("fixation", "fixation+pursuit"))
     position_window_ms: float = _opt(
         100.0, doc="each fixation sample is matched at its position averaged over this "
                    "window within its fixation (0 = the raw sample position)", min=0)
@@ -308,6 +326,7 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "study",
     if "stimuli" in data and isinstance(data["stimuli"], Mapping):
         data["stimuli"] = {k: (dict(v) if isinstance(v, Mapping) else v)
                            for k, v in data["stimuli"].items()}
+    overrides = list(overrides)
     data = apply_overrides(data, overrides)
     valid_sections = list(SECTIONS) + ["stimuli"]
     for k in data:
@@ -320,6 +339,12 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "study",
                 raise ConfigError(f"study section '[{req}]' is missing")
         parts = {name: _build(cls, data.get(name, {}), name) for name, cls in SECTIONS.items()}
         _validate_samples(parts["samples"])
+        det = parts["detection"]
+        if det.method == "ivt_pursuit" and det.min_pursuit_ms <= det.merge_max_gap_ms:
+            raise ConfigError("study key 'detection.min_pursuit_ms': found "
+                              f"{det.min_pursuit_ms:g}, expected a value > "
+                              f"detection.merge_max_gap_ms ({det.merge_max_gap_ms:g}) so that "
+                              "merging never swallows a pursuit")
         stim_raw = data.get("stimuli", {})
         if not isinstance(stim_raw, Mapping):
             raise ConfigError("study section '[stimuli]': expected one table per video, "
@@ -327,6 +352,9 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "study",
         stimuli = {str(name): _build(Stimulus, tbl, f"stimuli.{name}")
                    for name, tbl in stim_raw.items()}
     except ConfigError as e:
+        for text in overrides:  # a value typed on the command line is a usage error
+            if f"study key '{text.split('=', 1)[0].strip()}'" in str(e):
+                raise OverrideError(f"--set '{text}': {e}") from None
         raise ConfigError(f"{source}: {e}") from None
     return Study(stimuli=stimuli, **parts)
 

@@ -479,6 +479,24 @@ def detect_filled(filled: pd.DataFrame, *, display: "Display", detection: "Detec
     ``cache`` (a dict the caller keeps for one gap-filled frame) holds the
     velocity per velocity option set, so threshold sweeps compute it once.
     """
+    if detection.method == "ivt_pursuit":
+        from .pursuit import _merge_and_discard_events, ivt_pursuit
+
+        _, events = ivt_pursuit(
+            filled, display=display, interval_ms=interval_ms,
+            saccade_threshold_deg_s=detection.saccade_threshold_deg_s,
+            saccade_onset_deg_s=detection.velocity_threshold_deg_s,
+            noise_factor=detection.noise_factor,
+            velocity_window_ms=detection.velocity_window_ms,
+            pursuit_window_ms=detection.pursuit_window_ms,
+            pursuit_min_speed_deg_s=detection.pursuit_min_speed_deg_s,
+            pursuit_z=detection.pursuit_z, min_fixation_ms=detection.min_fixation_ms,
+            min_pursuit_ms=detection.min_pursuit_ms)
+        _, events = _merge_and_discard_events(
+            events, filled, display=display, merge_max_gap_ms=detection.merge_max_gap_ms,
+            merge_max_angle_deg=detection.merge_max_angle_deg,
+            min_fixation_ms=detection.min_fixation_ms, interval_ms=interval_ms)
+        return events
     if detection.method == "idt":
         raw = idt(filled, display=display,
                   dispersion_threshold_deg=detection.dispersion_threshold_deg,

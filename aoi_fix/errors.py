@@ -39,6 +39,13 @@ class UsageError(AoiFixError):
     exit_code = 2
 
 
+class OverrideError(UsageError, ConfigError):
+    """A ``--set`` value of the right type but not allowed for its key (exit 2).
+
+    Also a :class:`ConfigError`, so library callers catch it with the file's errors.
+    """
+
+
 def where(path: object, *, row: int | None = None, column: str | None = None,
           key: str | None = None) -> str:
     """Format the location part of an error message.

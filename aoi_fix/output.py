@@ -93,6 +93,10 @@ class AtomicOutputs:
         except FileExistsError:
             raise OutputError(f"{folder}: expected an output folder, found a file") from None
         except OSError as e:
+            blocker = next((p for p in (folder, *folder.parents) if p.is_file()), None)
+            if blocker is not None:  # e.g. --out-dir results.csv/sub
+                raise OutputError(f"{blocker}: expected an output folder, found a file "
+                                  f"(writing {final})") from None
             raise OutputError(f"{folder}: cannot write here ({e.strerror})") from None
         os.close(fd)
         self._pending.append((Path(tmp), final))

@@ -24,7 +24,9 @@ FIXATION_OUTPUT_COLUMNS = ["trial", "fixation", "onset_ms", "offset_ms", "durati
 def fixations_table(fixations: pd.DataFrame, *, trial=None, aoi=None) -> pd.DataFrame:
     """The public fixation table layout (``fixations.csv``).
 
-    ``trial`` and ``aoi`` are empty (missing) unless given.
+    ``trial`` and ``aoi`` are empty (missing) unless given.  Detectors that
+    also report pursuit (``ivt_pursuit``) add a last column ``event_type``
+    (``fixation`` or ``pursuit``).
     """
     n = len(fixations)
     out = pd.DataFrame({
@@ -37,6 +39,8 @@ def fixations_table(fixations: pd.DataFrame, *, trial=None, aoi=None) -> pd.Data
         "y_px": fixations["y_px"].to_numpy(float),
         "aoi": pd.Series([pd.NA] * n if aoi is None else aoi, dtype="string"),
     })
+    if "event_type" in fixations.columns:
+        out["event_type"] = pd.Series(fixations["event_type"].to_numpy(object), dtype="string")
     return out
 
 
@@ -218,6 +222,17 @@ def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes)
     trials = session.trials
+    # looking time: which events the AOI tables count
+    if "event_type" in fixations.columns:
+        kinds = fixations["event_type"].to_numpy(object)
+        parts["event_type"] = pd.Series(fixations.set_index("fixation")["event_type"]
+                                        .reindex(parts["fixation"]).to_numpy(object))
+        counted_kinds = session.study.aois.looking_events.split("+")
+        counted_event = np.isin(kinds, counted_kinds)
+        w_count = np.where((fid >= 0) & counted_event[np.maximum(fid, 0)], w, 0.0)
+        parts_count = parts[np.isin(parts["event_type"].to_numpy(object), counted_kinds)]
+    else:
+        w_count, parts_count = w, parts
     tr_label = np.where(parts["trial_row"].to_numpy() >= 0,
                         trials["trial"].to_numpy(object)[np.maximum(parts["trial_row"].to_numpy(), 0)]
                         if len(trials) else None, None)
@@ -226,10 +241,12 @@ def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
         aoi_label.append(matched.names_by_trial[row][c] if row >= 0 and c >= 0 else None)
     fix_table = fixations_table(parts, trial=pd.array(tr_label, dtype="string"),
                                 aoi=pd.array(aoi_label, dtype="string"))
-    summary = aoi_summary(trials, matched.names_by_trial, matched.trial_idx, matched.code, w,
-                          parts)
+    summary = aoi_summary(trials, matched.names_by_trial, matched.trial_idx, matched.code,
+                          w_count, parts_count)
+    if "event_type" in fixations.columns:
+        summary["looking_events"] = session.study.aois.looking_events
     raw_valid = session.samples["valid"].to_numpy(bool)
-    quality = trial_quality(trials, matched.trial_idx, raw_valid, w, session.interval_ms,
+    quality = trial_quality(trials, matched.trial_idx, raw_valid, w_count, session.interval_ms,
                             min_valid_fraction=session.study.quality.min_valid_fraction)
     return {"fixations": fix_table, "aoi_summary": summary, "trial_quality": quality,
             "_parts": parts, "_fid": fid, "_w": w}

@@ -88,12 +88,13 @@ def read_checks(path, *, study, samples: pd.DataFrame | None = None) -> pd.DataF
             vals[c] = v
         if vals["offset"] <= vals["onset"]:
             raise InputFormatError(f"{where(path, row=line, column='offset')}: found "
-                                   f"{vals['offset']:g} <= onset {vals['onset']:g}; expected "
-                                   "offset after onset")
-        if not (0 <= vals["x_px"] <= disp.width_px and 0 <= vals["y_px"] <= disp.height_px):
-            raise InputFormatError(
-                f"{where(path, row=line)}: target ({vals['x_px']:g}, {vals['y_px']:g}) px is "
-                f"off the display; expected 0..{disp.width_px} x 0..{disp.height_px}")
+                                   f"{vals['offset']:.12g} <= onset {vals['onset']:.12g}; "
+                                   "expected offset after onset")
+        for c, size in (("x_px", disp.width_px), ("y_px", disp.height_px)):
+            if not 0 <= vals[c] <= size:
+                raise InputFormatError(
+                    f"{where(path, row=line, column=c)}: found {vals[c]:g}, a target off the "
+                    f"display; expected 0..{size} px")
         recs.append((line, vals["onset"] * factor, vals["offset"] * factor,
                      vals["x_px"], vals["y_px"]))
     if not recs:
@@ -114,7 +115,8 @@ def read_checks(path, *, study, samples: pd.DataFrame | None = None) -> pd.DataF
             i = int(np.argmax(out.to_numpy()))
             raise InputFormatError(
                 f"{where(path, row=int(df['line'].iat[i]))}: check "
-                f"{df['onset_ms'].iat[i] / factor:g}..{df['offset_ms'].iat[i] / factor:g} lies "
+                f"{df['onset_ms'].iat[i] / factor:.12g}.."
+                f"{df['offset_ms'].iat[i] / factor:.12g} lies "
                 "outside the recording; expected times on the samples' clock and unit")
     df.insert(0, "check", np.arange(1, len(df) + 1, dtype=np.int64))
     return df.drop(columns="line")

@@ -44,18 +44,32 @@ _TRUE_TEXT = {"true", "t", "yes", "y", "valid"}
 _FALSE_TEXT = {"false", "f", "no", "n", "invalid", ""}
 
 
+def _shown(value) -> str:
+    """A parsed cell for a message: numbers as written, text quoted, missing said so."""
+    if value is None or value is pd.NA or (isinstance(value, float) and value != value):
+        return "no value (an empty cell or one of [samples] missing_values)"
+    if isinstance(value, float):
+        return f"{value:g}"
+    return repr(str(value))
+
+
+def _skip_blank_row(row) -> str:
+    return "skip" if not row.text.strip() else "error"
+
+
 def _open_text(path: Path):
     if path.suffix == ".gz":
         return io.TextIOWrapper(gzip.open(path, "rb"), encoding="utf-8-sig", newline="")
     return open(path, encoding="utf-8-sig", newline="")
 
 
-def _head_line(path: Path) -> str:
+def _head_line(path: Path) -> tuple[str, int]:
+    """The header line and the number of blank lines before it."""
     try:
         with _open_text(path) as fh:
-            for line in fh:
+            for before, line in enumerate(fh):
                 if line.strip():
-                    return line.rstrip("\r\n")
+                    return line.rstrip("\r\n"), before
     except UnicodeDecodeError as e:
         raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start}); expected a "
                                "delimited text file") from None
@@ -90,9 +104,13 @@ def _diagnose(path: Path, delimiter: str, decimal: str, header: list[str],
     idx = {name: header.index(name) for name in numeric}
     with _open_text(path) as fh:
         reader = csv.reader(fh, delimiter=delimiter)
-        next(reader, None)
-        for lineno, row in enumerate(reader, start=2):
+        header_seen = False
+        for row in reader:
+            lineno = reader.line_num
             if not row or all(not c.strip() for c in row):
+                continue
+            if not header_seen:
+                header_seen = True
                 continue
             if len(row) != len(header):
                 return (f"{path}: line {lineno}: found {len(row)} fields, expected "
@@ -126,11 +144,11 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
         if missing_cols:
             raise InputFormatError(f"{path}: column '{missing_cols[0]}' is missing; "
                                    f"found columns: {', '.join(schema.names)}")
-        return pq.read_table(path, columns=names).to_pandas()
+        return pq.read_table(path, columns=names).to_pandas(split_blocks=True, self_destruct=True)
 
     import pyarrow.csv as pcsv
 
-    header_line = _head_line(path)
+    header_line, blank_before = _head_line(path)
     delimiter = _sniff_delimiter(header_line, cols, path)
     header = [h.strip().strip('"') for h in header_line.split(delimiter)]
     for role, name in needed.items():
@@ -139,6 +157,10 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
                 f"{path}: line 1: column '{name}' ([samples] {role}) is missing; found "
                 f"columns: {', '.join(header)}" + (" (wrong delimiter?)" if len(header) == 1
                                                    else ""))
+    for name in dict.fromkeys(needed.values()):
+        if header.count(name) > 1:
+            raise InputFormatError(f"{path}: line 1: column '{name}' appears {header.count(name)} "
+                                   "times; expected each column name once")
     numeric = [needed[r] for r in ("time", "x", "y", "x_left", "y_left", "x_right", "y_right")
                if r in needed]
     missing = set(cols.missing_values)
@@ -150,11 +172,13 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
     convert = pcsv.ConvertOptions(
         include_columns=names, column_types=column_types, null_values=list(missing),
         strings_can_be_null=True, decimal_point=cols.decimal, quoted_strings_can_be_null=True)
-    parse = pcsv.ParseOptions(delimiter=delimiter)
+    # a line of only spaces is a blank line (pyarrow skips empty ones only)
+    parse = pcsv.ParseOptions(delimiter=delimiter, invalid_row_handler=_skip_blank_row)
     try:
         table = pcsv.read_csv(path, parse_options=parse, convert_options=convert,
-                              read_options=pcsv.ReadOptions(block_size=1 << 22))
-    except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError, EOFError, OSError) as e:
+                              read_options=pcsv.ReadOptions(block_size=1 << 22,
+                                                            skip_rows=blank_before))
+    except (pa.ArrowException, UnicodeDecodeError, EOFError, OSError) as e:
         log.debug("pyarrow refused %s: %s", path, e)
         raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
                                          missing)) from None
@@ -163,7 +187,7 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
             or pa.types.is_null(tcol.type)):
         raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
                                          missing))
-    return table.to_pandas()
+    return table.to_pandas(split_blocks=True, self_destruct=True)
 
 
 def _line_scanner(path: Path):
@@ -260,7 +284,8 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     if bad.any():
         i = int(np.argmax(bad))
         raise InputFormatError(f"{source}: line {line_of(i)}, column '{cols.time}': found "
-                               f"{t_raw.iloc[i]!r}, expected a finite time in {cols.time_unit}")
+                               f"{_shown(t_raw.iloc[i])}, expected a finite time in "
+                               f"{cols.time_unit}")
     t_ms = t_num.to_numpy(dtype=float) * TIME_SCALE_MS[cols.time_unit]
     if len(t_ms) > 1:
         step = np.diff(t_ms)

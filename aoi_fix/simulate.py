@@ -84,6 +84,9 @@ AOI_OFF_VIDEO = "(off-video)"
 MOVEMENTS = ("fixation", "saccade", "blink", "lookaway")
 LABELS = ("fixation", "saccade", "loss")
 _FIX, _SAC, _BLINK, _LOOK = 0, 1, 2, 3
+# smooth pursuit (only when asked for): appended, so the codes above never change
+PURSUIT = "pursuit"
+_PUR = 4
 
 
 class Target(NamedTuple):
@@ -163,8 +166,14 @@ def _as_target(value) -> Target:
 
 def _plan_events(*, display, t0_ms, end_ms, rng, next_target, fixation_ms_mean,
                  fixation_ms_min, fixation_shape, amplitude_deg, blink_rate_hz, blink_ms,
-                 lookaway_rate_hz, lookaway_ms, max_follow_deg_s, cut_times_ms, latency_ms):
-    """Sequence of events in continuous time; a loop over events, not samples."""
+                 lookaway_rate_hz, lookaway_ms, max_follow_deg_s, cut_times_ms, latency_ms,
+                 pursuit_fraction=0.0, pursuit_speed_deg_s=(2.0, 30.0),
+                 pursuit_ms=(300.0, 1500.0)):
+    """Sequence of events in continuous time; a loop over events, not samples.
+
+    With ``pursuit_fraction == 0`` no extra random numbers are drawn, so the
+    plan is exactly the one without pursuit support.
+    """
     geo = _Geo(display)
     cuts = sorted(float(c) for c in cut_times_ms)
     amp_lo, amp_hi = float(amplitude_deg[0]), float(amplitude_deg[1])
@@ -179,16 +188,28 @@ def _plan_events(*, display, t0_ms, end_ms, rng, next_target, fixation_ms_mean,
         return tg
 
     t = float(t0_ms)
-    tg = capped(next_target(t, display.width_px / 2.0, display.height_px / 2.0))
+    raw = next_target(t, display.width_px / 2.0, display.height_px / 2.0)
+    tg = capped(raw)
     while t < end_ms:
-        d = fixation_ms_min + rng.gamma(fixation_shape, scale)
-        ci = bisect_right(cuts, t)
-        if ci < len(cuts) and t + d > cuts[ci]:
-            d = min(d, max(fixation_ms_min, cuts[ci] + rng.uniform(*latency_ms) - t))
-        if tg.hold_until_ms == tg.hold_until_ms and tg.hold_until_ms > t:
-            d = max(d, tg.hold_until_ms - t)
-        rows.append((t, _FIX, tg.x_px, tg.y_px, np.nan, np.nan, tg.vx_px_ms, tg.vy_px_ms, d))
-        xe, ye = tg.x_px + tg.vx_px_ms * d, tg.y_px + tg.vy_px_ms * d
+        holds = tg.hold_until_ms == tg.hold_until_ms and tg.hold_until_ms > t
+        if pursuit_fraction > 0 and not holds and rng.random() < pursuit_fraction:
+            d, vx, vy = _plan_pursuit(raw, tg, geo, display, rng, pursuit_speed_deg_s,
+                                      pursuit_ms)
+            ci = bisect_right(cuts, t)
+            if ci < len(cuts) and t + d > cuts[ci]:
+                d = min(d, max(fixation_ms_min, cuts[ci] + rng.uniform(*latency_ms) - t))
+            rows.append((t, _PUR, tg.x_px, tg.y_px, np.nan, np.nan, vx, vy, d))
+            xe, ye = tg.x_px + vx * d, tg.y_px + vy * d
+        else:
+            d = fixation_ms_min + rng.gamma(fixation_shape, scale)
+            ci = bisect_right(cuts, t)
+            if ci < len(cuts) and t + d > cuts[ci]:
+                d = min(d, max(fixation_ms_min, cuts[ci] + rng.uniform(*latency_ms) - t))
+            if holds:
+                d = max(d, tg.hold_until_ms - t)
+            rows.append((t, _FIX, tg.x_px, tg.y_px, np.nan, np.nan, tg.vx_px_ms, tg.vy_px_ms,
+                         d))
+            xe, ye = tg.x_px + tg.vx_px_ms * d, tg.y_px + tg.vy_px_ms * d
         t += d
         if t >= end_ms:
             break
@@ -200,10 +221,12 @@ def _plan_events(*, display, t0_ms, end_ms, rng, next_target, fixation_ms_mean,
             dur = rng.uniform(*rng_ms)
             rows.append((t, kind, np.nan, np.nan, np.nan, np.nan, 0.0, 0.0, dur))
             t += dur
-            tg = capped(next_target(t, xe, ye))
+            raw = next_target(t, xe, ye)
+            tg = capped(raw)
             continue
         for _ in range(8):
-            cand = capped(next_target(t, xe, ye))
+            raw = next_target(t, xe, ye)
+            cand = capped(raw)
             amp = geo.angle_deg(xe, ye, cand.x_px, cand.y_px)
             if amp_lo <= amp <= amp_hi:
                 break
@@ -212,8 +235,50 @@ def _plan_events(*, display, t0_ms, end_ms, rng, next_target, fixation_ms_mean,
         rows.append((t, _SAC, xe, ye, xl, yl, 0.0, 0.0, sd))
         t += sd
         tg = cand._replace(x_px=xl, y_px=yl)
+        raw = raw._replace(x_px=xl, y_px=yl)
     arr = np.array(rows, dtype=float).reshape(-1, 9)
     return arr
+
+
+def _plan_pursuit(raw: Target, start: Target, geo: "_Geo", display: Display, rng,
+                  speed_deg_s, duration_ms):
+    """Duration (ms) and velocity (px/ms) of one smooth pursuit from ``start``.
+
+    The eye follows the target's own velocity when its speed lies in
+    ``speed_deg_s``; otherwise it follows an invented target moving in a
+    random direction at a speed drawn uniformly from ``speed_deg_s``.  The
+    path is kept on the display (5 % margin): up to 8 random directions are
+    tried, then the pursuit heads through the display centre and is cut
+    where it would leave.  Degrees are converted to px at the display centre.
+    """
+    lo, hi = float(speed_deg_s[0]), float(speed_deg_s[1])
+    d = float(rng.uniform(*duration_ms))
+    W, H = display.width_px, display.height_px
+    mx, my = 0.05 * W, 0.05 * H
+    x0, y0 = start.x_px, start.y_px
+    s = geo.speed_deg_s(raw.vx_px_ms, raw.vy_px_ms)
+    if lo <= s <= hi and s > 0:
+        vx, vy = raw.vx_px_ms, raw.vy_px_ms
+    else:
+        speed = float(rng.uniform(lo, hi)) / 1000.0  # deg/ms
+        th = rng.uniform(0.0, 2.0 * np.pi, 8)
+        vxs, vys = speed * np.cos(th) * geo.ppx, speed * np.sin(th) * geo.ppy
+        xe, ye = x0 + vxs * d, y0 + vys * d
+        ok = (xe >= mx) & (xe <= W - mx) & (ye >= my) & (ye <= H - my)
+        if ok.any():
+            k = int(np.argmax(ok))
+            return d, float(vxs[k]), float(vys[k])
+        dx, dy = W / 2.0 - x0, H / 2.0 - y0
+        th0 = math.atan2(dy / geo.ppy, dx / geo.ppx) if (dx or dy) else float(th[0])
+        vx, vy = speed * math.cos(th0) * geo.ppx, speed * math.sin(th0) * geo.ppy
+    # cut the pursuit where it would leave the display (margin included)
+    limit = np.inf
+    for p0, v, a, b in ((x0, vx, mx, W - mx), (y0, vy, my, H - my)):
+        if v > 0:
+            limit = min(limit, (b - p0) / v)
+        elif v < 0:
+            limit = min(limit, (a - p0) / v)
+    return max(min(d, limit), 1.0), float(vx), float(vy)
 
 
 def _random_walk_targets(display: Display, rng, amplitude_deg, margin_frac=0.05):
@@ -257,7 +322,8 @@ def simulate_gaze(*, display: Display, duration_ms: float, rate_hz: float,
                   lookaway_rate_hz: float = 0.0, lookaway_ms=(500.0, 3000.0),
                   drift_deg=(0.0, 0.0), t0_ms: float = 0.0, max_follow_deg_s: float = 2.0,
                   cut_times_ms=(), latency_ms=(150.0, 250.0), binocular: bool = False,
-                  eye_offset_deg=(0.3, 0.1)):
+                  eye_offset_deg=(0.3, 0.1), pursuit_fraction: float = 0.0,
+                  pursuit_speed_deg_s=(2.0, 30.0), pursuit_ms=(300.0, 1500.0)):
     """Simulate gaze samples with exact per-sample truth.
 
     The eye alternates fixations and saccades.  Fixation durations are
@@ -316,6 +382,21 @@ def simulate_gaze(*, display: Display, duration_ms: float, rate_hz: float,
         ``eye_offset_deg``, has its own noise of SD ``noise_deg`` and its own
         dropouts.  ``x_px, y_px`` are then the mean of the valid eyes and
         ``valid`` means at least one eye valid.
+    pursuit_fraction : float
+        Probability that the eye, after a saccade or a loss, smoothly pursues
+        a moving target instead of fixating (default 0: no pursuit, and the
+        output is exactly that of a simulator without pursuit support).
+        Never during a target with ``hold_until_ms`` (a check target).
+    pursuit_speed_deg_s : (float, float)
+        Pursuit speed range.  A target from ``targets_px`` whose own speed
+        lies in it is followed at that velocity; otherwise the eye follows an
+        invented target in a random direction at a speed drawn uniformly from
+        the range, kept on the display.  2-30 deg/s covers the slow pursuit
+        of faces and hands (from memory; pursuit gain falls off above ~30
+        deg/s, and young children's pursuit is slower than adults').
+    pursuit_ms : (float, float)
+        Pursuit duration range (uniform).  The eye pursues from its landing
+        point without latency or catch-up saccades (a simplification).
 
     Returns
     -------
@@ -328,7 +409,10 @@ def simulate_gaze(*, display: Display, duration_ms: float, rate_hz: float,
         (fixation/saccade/blink/lookaway), ``event`` (id of the fixation or
         saccade, increasing in time, -1 for blinks and look-aways),
         ``true_x_px, true_y_px`` (true gaze: no noise, no drift; NaN during
-        blinks and look-aways), ``drift_x_deg, drift_y_deg``.
+        blinks and look-aways), ``drift_x_deg, drift_y_deg``.  With
+        ``pursuit_fraction > 0`` both categoricals gain a last category
+        ``"pursuit"`` (label code 3, movement code 4); a pursuit has an
+        ``event`` id like a fixation.
 
     Examples
     --------
@@ -352,7 +436,9 @@ def simulate_gaze(*, display: Display, duration_ms: float, rate_hz: float,
                       amplitude_deg=amplitude_deg, blink_rate_hz=blink_rate_hz,
                       blink_ms=blink_ms, lookaway_rate_hz=lookaway_rate_hz,
                       lookaway_ms=lookaway_ms, max_follow_deg_s=max_follow_deg_s,
-                      cut_times_ms=cut_times_ms, latency_ms=latency_ms)
+                      cut_times_ms=cut_times_ms, latency_ms=latency_ms,
+                      pursuit_fraction=pursuit_fraction,
+                      pursuit_speed_deg_s=pursuit_speed_deg_s, pursuit_ms=pursuit_ms)
     onset, kind = ev[:, 0], ev[:, 1].astype(np.int8)
     idx = np.searchsorted(onset, t, side="right") - 1
     idx = np.clip(idx, 0, None)
@@ -405,10 +491,15 @@ def simulate_gaze(*, display: Display, duration_ms: float, rate_hz: float,
 
     mcode = k.astype(np.int8)
     lcode = np.where(valid, np.minimum(mcode, 2), 2).astype(np.int8)
+    labels, movements = list(LABELS), list(MOVEMENTS)
+    if pursuit_fraction > 0:
+        lcode[valid & (mcode == _PUR)] = len(labels)
+        labels.append(PURSUIT)
+        movements.append(PURSUIT)
     truth = pd.DataFrame({
         "t_ms": t,
-        "label": pd.Categorical.from_codes(lcode, categories=list(LABELS)),
-        "movement": pd.Categorical.from_codes(mcode, categories=list(MOVEMENTS)),
+        "label": pd.Categorical.from_codes(lcode, categories=labels),
+        "movement": pd.Categorical.from_codes(mcode, categories=movements),
         "event": event,
         "true_x_px": tx,
         "true_y_px": ty,
@@ -793,7 +884,9 @@ def _media_rect(st: SessionStyle) -> tuple[float, float, float, float]:
 
 
 def simulate_session(style, *, n_trials: int = 6, trial_ms: float = 8000.0,
-                     seed=0) -> Session:
+                     seed=0, pursuit_fraction: float = 0.0,
+                     pursuit_speed_deg_s=(2.0, 30.0),
+                     pursuit_ms=(300.0, 1500.0)) -> Session:
     """Simulate a recording session: trials watching the storyteller videos.
 
     Timeline (times snapped half a sample interval off the sample grid, so
@@ -820,6 +913,10 @@ def simulate_session(style, *, n_trials: int = 6, trial_ms: float = 8000.0,
         that fit in it.
     seed : int
         Everything is reproducible from it.
+    pursuit_fraction, pursuit_speed_deg_s, pursuit_ms
+        Smooth pursuit, as in :func:`simulate_gaze` (default: none).  Pursuit
+        samples are labelled ``"pursuit"`` in ``truth_samples`` and count in
+        neither ``truth_fixations`` nor :func:`true_aoi_percent`.
 
     Returns
     -------
@@ -926,7 +1023,9 @@ def simulate_session(style, *, n_trials: int = 6, trial_ms: float = 8000.0,
         amplitude_deg=(1.0, 20.0), blink_rate_hz=st.blink_rate_hz,
         dropout_rate_hz=st.dropout_rate_hz, lookaway_rate_hz=st.lookaway_rate_hz,
         drift_deg=st.drift_deg, t0_ms=t0, cut_times_ms=cuts,
-        binocular=bool(st.eye_cols), eye_offset_deg=st.eye_offset_deg)
+        binocular=bool(st.eye_cols), eye_offset_deg=st.eye_offset_deg,
+        pursuit_fraction=pursuit_fraction, pursuit_speed_deg_s=pursuit_speed_deg_s,
+        pursuit_ms=pursuit_ms)
     tt = truth["t_ms"].to_numpy()
     ti = np.searchsorted(starts, tt, side="right") - 1
     in_trial = (ti >= 0) & (tt < ends[np.clip(ti, 0, None)])

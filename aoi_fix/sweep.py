@@ -61,12 +61,17 @@ log = logging.getLogger(__name__)
 
 #: swept keys that act only on one detection method
 METHOD_ONLY_KEYS = {
-    "detection.velocity_threshold_deg_s": "ivt",
-    "detection.noise_factor": "ivt",
-    "detection.velocity_window_ms": "ivt",
-    "detection.smoothing": "ivt",
-    "detection.smoothing_window_ms": "ivt",
-    "detection.dispersion_threshold_deg": "idt",
+    "detection.velocity_threshold_deg_s": ("ivt", "ivt_pursuit"),
+    "detection.noise_factor": ("ivt", "ivt_pursuit"),
+    "detection.velocity_window_ms": ("ivt", "ivt_pursuit"),
+    "detection.smoothing": ("ivt",),
+    "detection.smoothing_window_ms": ("ivt",),
+    "detection.dispersion_threshold_deg": ("idt",),
+    "detection.saccade_threshold_deg_s": ("ivt_pursuit",),
+    "detection.pursuit_window_ms": ("ivt_pursuit",),
+    "detection.pursuit_min_speed_deg_s": ("ivt_pursuit",),
+    "detection.pursuit_z": ("ivt_pursuit",),
+    "detection.min_pursuit_ms": ("ivt_pursuit",),
 }
 #: sections whose keys change how the input files are read
 RELOAD_SECTIONS = ("display", "samples", "stimuli")
@@ -212,10 +217,11 @@ def build_settings(base: Study, grid: Mapping[str, Sequence]) -> list[Setting]:
     methods = typed.get("detection.method", [base.detection.method])
     for k in keys:
         m = METHOD_ONLY_KEYS.get(k)
-        if m is not None and m not in methods:
-            raise UsageError(f"--grid '{k}': acts on method {m!r} only, but the sweep runs "
-                             f"{', '.join(map(repr, methods))}; add --grid detection.method "
-                             f"with {m!r} or --set detection.method={m}")
+        if m is not None and not set(m) & set(methods):
+            raise UsageError(f"--grid '{k}': acts on method {' or '.join(map(repr, m))} only, "
+                             f"but the sweep runs {', '.join(map(repr, methods))}; add --grid "
+                             f"detection.method with {m[0]!r} or --set "
+                             f"detection.method={m[0]}")
     base_dict = base.to_dict()
     # one check per value, so that an out-of-range value is named on its own
     for k in keys:
@@ -232,7 +238,7 @@ def build_settings(base: Study, grid: Mapping[str, Sequence]) -> list[Setting]:
         values = dict(zip(keys, combo))
         method = values.get("detection.method", base.detection.method)
         for k in keys:
-            if METHOD_ONLY_KEYS.get(k, method) != method:
+            if method not in METHOD_ONLY_KEYS.get(k, (method,)):
                 values[k] = None
         ident = tuple((k, _value_text(v) if v is not None else None) for k, v in values.items())
         if ident in seen:
@@ -381,6 +387,10 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     filled = cache[gap_key]
     fixations = detect_filled(filled, display=study.display, detection=det,
                               interval_ms=session.interval_ms, cache=cache)
+    if "event_type" in fixations.columns:
+        # pursuit events: looking time follows [aois] looking_events; run
+        # convert's own summaries (nothing worth sharing)
+        return _evaluate_by_convert(session)
     t = session.samples["t_ms"].to_numpy(float)
     fid = fixation_of_sample(len(t), fixations)
     window = study.aois.position_window_ms

@@ -294,8 +294,9 @@ def read_trials(path, *, study: Study, time_unit: str | None = None) -> pd.DataF
         a, b = df["trial"].iat[i], df["trial"].iat[i + 1]
         raise InputFormatError(
             f"{where(path, row=int(lines_sorted[i + 1]), column='start')}: trial {b!r} starts "
-            f"at {start[i + 1]:g} ms, before trial {a!r} (row {int(lines_sorted[i])}) ends at "
-            f"{end[i]:g} ms; expected trials that do not overlap")
+            f"at {start[i + 1] / factor:.12g} {unit}, before trial {a!r} (row "
+            f"{int(lines_sorted[i])}) ends at {end[i] / factor:.12g} {unit}; expected trials "
+            "that do not overlap")
     df.attrs["source"] = str(path)
     return df
 

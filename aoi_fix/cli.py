@@ -66,7 +66,7 @@ def _check_format(fmt: str) -> str:
 @app.command()
 @handle_errors
 def fixations(
-    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    samples: Path = typer.Argument(..., metavar="SAMPLES", help="Raw sample file (CSV/TSV/.gz/Parquet)."),
     study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
     out: Path = typer.Option(..., "--out", help="Fixation table to write."),
     set_: Optional[List[str]] = typer.Option(None, "--set", help=SET_HELP),
@@ -83,7 +83,7 @@ def fixations(
 @app.command()
 @handle_errors
 def convert(
-    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    samples: Path = typer.Argument(..., metavar="SAMPLES", help="Raw sample file (CSV/TSV/.gz/Parquet)."),
     study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
     trials: Path = typer.Option(..., "--trials", help="Trial table: trial, stimulus, start, end."),
     aois: Path = typer.Option(..., "--aois", help="AOI table (CSV with WKT, or GeoJSON)."),
@@ -110,7 +110,7 @@ def convert(
 @app.command()
 @handle_errors
 def demo(
-    directory: Path = typer.Argument(Path("demo_out"), help="Folder for the demo inputs and "
+    directory: Path = typer.Argument(Path("demo_out"), metavar="DIRECTORY", help="Folder for the demo inputs and "
                                                            "outputs."),
     fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
 ) -> None:
@@ -133,7 +133,7 @@ def demo(
 @app.command()
 @handle_errors
 def sweep(
-    samples: Path = typer.Argument(..., help="Raw sample file (CSV/TSV/.gz/Parquet)."),
+    samples: Path = typer.Argument(..., metavar="SAMPLES", help="Raw sample file (CSV/TSV/.gz/Parquet)."),
     study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
     trials: Path = typer.Option(..., "--trials", help="Trial table: trial, stimulus, start, end."),
     aois: Path = typer.Option(..., "--aois", help="AOI table (CSV with WKT, or GeoJSON)."),
@@ -185,7 +185,7 @@ def _parse_frames(text: Optional[str]) -> Optional[List[int]]:
 @aois_app.command("check")
 @handle_errors
 def aois_check(
-    aois: Path = typer.Argument(..., help="AOI table (CSV with WKT, or GeoJSON; keyframes "
+    aois: Path = typer.Argument(..., metavar="AOIS", help="AOI table (CSV with WKT, or GeoJSON; keyframes "
                                           "allowed)."),
     study: Path = typer.Option(..., "--study", help="Study file (TOML)."),
     plots: bool = typer.Option(False, "--plots", help="Also draw one contact sheet PNG per "
@@ -220,7 +220,7 @@ def aois_check(
 @app.command()
 @handle_errors
 def batch(
-    sessions: Path = typer.Argument(..., help="Session table (CSV): session, samples, trials "
+    sessions: Path = typer.Argument(..., metavar="SESSIONS", help="Session table (CSV): session, samples, trials "
                                               "and optionally checks, study."),
     study: Path = typer.Option(..., "--study", help="Study file (TOML) for sessions without "
                                                     "their own."),
@@ -284,7 +284,25 @@ def batch(
 
 
 def main() -> None:  # console-script entry point
-    app()
+    """Run the app; a usage error (unknown option, missing argument) is one line, exit 2."""
+    from typer._click import exceptions as click_exc  # the click typer ships with
+
+    try:
+        rv = app(standalone_mode=False)
+    except click_exc.NoArgsIsHelpError as e:  # bare `aoi-fix`: help was shown
+        e.show()
+        sys.exit(2)
+    except click_exc.UsageError as e:
+        path = e.ctx.command_path if e.ctx is not None else "aoi-fix"
+        typer.echo(f"aoi-fix: usage error: {e.format_message()} (try '{path} --help')",
+                   err=True)
+        sys.exit(2)
+    except typer.Exit as e:
+        sys.exit(e.exit_code)
+    except typer.Abort:
+        typer.echo("aoi-fix: aborted", err=True)
+        sys.exit(1)
+    sys.exit(rv if isinstance(rv, int) else 0)
 
 
 if __name__ == "__main__":  # pragma: no cover

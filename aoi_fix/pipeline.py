@@ -114,6 +114,8 @@ def load_session(samples_path, study, trials_path, aois_path, checks_path=None, 
     samples = read_samples(samples_path, study.samples, study.display)
     interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
     trials = read_trials(trials_path, study=study)
+    _trials_meet_recording(trials, samples, trials_path, samples_path,
+                           study.samples.time_unit)
     aois = read_aois(aois_path, stimuli=study.stimuli)
     stimulus_check(trials, aois, trials_path, aois_path)
     checks = None
@@ -126,6 +128,30 @@ def load_session(samples_path, study, trials_path, aois_path, checks_path=None, 
         paths["checks"] = Path(checks_path)
     return Session(study=study, samples=samples, interval_ms=interval, trials=trials,
                    aois=aois, checks=checks, paths=paths)
+
+
+def _trials_meet_recording(trials: pd.DataFrame, samples: pd.DataFrame, trials_path,
+                           samples_path, unit: str) -> None:
+    """No trial overlapping the recording means another clock or unit: refuse it.
+
+    A single trial outside the recording (a recording stopped early) is kept:
+    it has no samples, valid_fraction 0 and is flagged.
+    """
+    from .errors import InputFormatError
+    from .samples import TIME_SCALE_MS
+
+    if len(trials) == 0 or len(samples) == 0:
+        return
+    t0 = float(samples["t_ms"].iat[0])
+    t1 = float(samples["t_ms"].iat[-1])
+    overlap = (trials["end_ms"] > t0) & (trials["start_ms"] <= t1)
+    if not overlap.any():
+        k = TIME_SCALE_MS[unit]
+        raise InputFormatError(
+            f"{trials_path}: no trial overlaps the recording {samples_path} "
+            f"({t0 / k:.12g}..{t1 / k:.12g} {unit}); first trial {trials['start_ms'].iat[0] / k:.12g}..."
+            f"{trials['end_ms'].iat[0] / k:.12g} {unit}; expected trial times on the "
+            "samples' clock and in [samples] time_unit")
 
 
 def _full_interpolation(samples: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
@@ -214,13 +240,15 @@ def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
               filled: pd.DataFrame) -> dict[str, pd.DataFrame]:
     """Per-trial tables from detected fixations and the per-sample placement."""
     from .summary import (aoi_summary, fixation_of_sample, fixation_parts,
-                          sample_weights, trial_quality)
+                          sample_weights, trial_quality, carry_weights)
 
     t = session.samples["t_ms"].to_numpy(float)
     fid = fixation_of_sample(len(t), fixations)
-    w = sample_weights(t, fid, fixations, _boundaries(session.trials))
+    w_own = sample_weights(t, fid, fixations, _boundaries(session.trials))
+    w = w_own + carry_weights(t, fid, w_own)
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
-    parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes)
+    parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes,
+                           w_own=w_own)
     trials = session.trials
     # looking time: which events the AOI tables count
     if "event_type" in fixations.columns:

@@ -22,8 +22,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["NONE_LABEL", "OFF_VIDEO_LABEL", "sample_weights", "fixation_parts",
-           "aoi_summary", "trial_quality"]
+__all__ = ["NONE_LABEL", "OFF_VIDEO_LABEL", "sample_weights", "carry_weights",
+           "fixation_parts", "aoi_summary", "trial_quality"]
 
 NONE_LABEL = "(none)"
 OFF_VIDEO_LABEL = "(off-video)"
@@ -67,20 +67,30 @@ def sample_weights(t_ms: np.ndarray, fid: np.ndarray, fixations: pd.DataFrame,
         nb = np.where(k < len(b), b[np.minimum(k, len(b) - 1)], np.inf)
         w = np.minimum(w, nb - t_ms)
     w[~is_fix] = 0.0
-    w = np.maximum(w, 0.0)
-    # time a sample lost to a trial boundary goes to the next sample of the same
-    # fixation, on the other side of the boundary: a fixation in progress when
-    # a trial starts counts for the trial from its first millisecond
-    step = np.diff(t_ms)
+    return np.maximum(w, 0.0)
+
+
+def carry_weights(t_ms: np.ndarray, fid: np.ndarray, w_own: np.ndarray) -> np.ndarray:
+    """Time a sample lost to a trial boundary, given to the next sample of its fixation.
+
+    ``w_own`` from :func:`sample_weights` stops at a trial boundary; the rest of
+    that interval (boundary to next sample) is carried by the next sample of the
+    same fixation, on the other side of the boundary, so a fixation in progress
+    when a trial starts counts for the trial from its first millisecond.  Use
+    ``w_own + carry`` as the time weights.
+    """
+    n = len(t_ms)
     carry = np.zeros(n)
-    cont = (fid[1:] == fid[:-1]) & is_fix[1:]
-    carry[1:] = np.where(cont, np.maximum(step - w[:-1], 0.0), 0.0)
-    return w + carry
+    if n < 2:
+        return carry
+    cont = (fid[1:] == fid[:-1]) & (fid[1:] >= 0)
+    carry[1:] = np.where(cont, np.maximum(np.diff(t_ms) - w_own[:-1], 0.0), 0.0)
+    return carry
 
 
 def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
                    w: np.ndarray, code: np.ndarray, fixations: pd.DataFrame,
-                   n_codes: int) -> pd.DataFrame:
+                   n_codes: int, w_own: np.ndarray | None = None) -> pd.DataFrame:
     """Fixations split at trial boundaries, each part with its majority AOI code.
 
     Returns columns ``fixation`` (the detector's number), ``trial_row`` (-1
@@ -103,7 +113,10 @@ def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
     first = idx[new]
     last = idx[np.append(new[1:], True)]
     n_parts = len(first)
-    offset = t_ms[last] + w[last]
+    # a part ends where its last sample's own time ends (``w`` may also carry
+    # time cut off at a trial boundary before that sample)
+    own = w if w_own is None else w_own
+    offset = t_ms[last] + own[last]
     # a part starts where its time starts (a trial boundary for a clipped part)
     onset = offset - np.bincount(part, weights=w[idx], minlength=len(first))
     fx = fixations["x_px"].to_numpy(float)

@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 
 from aoi_fix.summary import (CODE_NONE, CODE_NOT_IN_TRIAL, CODE_OFF_VIDEO, NONE_LABEL,
-                             OFF_VIDEO_LABEL, aoi_summary, fixation_of_sample,
+                             OFF_VIDEO_LABEL, aoi_summary, carry_weights, fixation_of_sample,
                              fixation_parts, sample_weights, trial_quality)
 
 
@@ -76,11 +76,14 @@ def test_weights_are_cut_at_trial_boundaries():
     # fixation: samples 10..60 (rows 1..6), offset 70; a trial boundary at 25 ms
     fx = _fix([1], [7], [10], [70])
     fid = fixation_of_sample(len(T10), fx)
-    w = sample_weights(T10, fid, fx, np.array([25.0]))
-    # the sample at 20 would stand for 20..30; cut at 25 it stands for 5 ms only,
-    # and the 5 ms after the boundary go to the next sample of the fixation (30)
+    w_own = sample_weights(T10, fid, fx, np.array([25.0]))
+    # the sample at 20 would stand for 20..30; cut at 25 it stands for 5 ms only
+    assert w_own.tolist() == [0, 10, 5, 10, 10, 10, 10, 0, 0, 0]
+    # ... and the 5 ms after the boundary go to the next sample of the fixation (30)
+    w = w_own + carry_weights(T10, fid, w_own)
     assert w.tolist() == [0, 10, 5, 15, 10, 10, 10, 0, 0, 0]
     assert w.sum() == pytest.approx(60.0)  # still the fixation's duration
+    w = w_own
     # no weight ever reaches across a boundary
     assert np.all((T10 >= 25) | (T10 + w <= 25))
 
@@ -99,13 +102,14 @@ def test_fixation_spanning_two_trials_becomes_two_clipped_parts():
     # one fixation on samples 20..70 (rows 2..7), offset 80; trial 0 = [0, 45), trial 1 = [45, 100)
     fx = _fix([2], [8], [20], [80], x_px=[300.0], y_px=[400.0])
     fid = fixation_of_sample(len(T10), fx)
-    w = sample_weights(T10, fid, fx, np.array([0.0, 45.0, 100.0]))
+    w_own = sample_weights(T10, fid, fx, np.array([0.0, 45.0, 100.0]))
+    w = w_own + carry_weights(T10, fid, w_own)
     # weights: 20:10, 30:10, 40:min(10, 45-40)=5, 50:10 + the 5 ms after the
     # boundary, 60:10, 70:80-70=10
     assert w[2:8].tolist() == [10, 10, 5, 15, 10, 10]
     trial_idx = np.where(T10 < 45, 0, 1)
     code = np.array([-3, -3, 0, 1, 1, CODE_NONE, CODE_NONE, 0, -3, -3])
-    parts = fixation_parts(T10, fid, trial_idx, w, code, fx, n_codes=2)
+    parts = fixation_parts(T10, fid, trial_idx, w, code, fx, n_codes=2, w_own=w_own)
     assert len(parts) == 2
     assert parts["trial_row"].tolist() == [0, 1]
     assert parts["fixation"].tolist() == [1, 1]  # the detector's number, both parts
@@ -245,3 +249,21 @@ def test_trial_quality_pause_lowers_valid_fraction():
                       min_valid_fraction=0.5)
     assert q["valid_fraction"].iat[0] == pytest.approx(0.5)
     assert not q["flag_low_validity"].iat[0]  # 0.5 is not below 0.5
+
+
+def test_one_sample_part_between_two_close_boundaries_stays_inside_its_trial():
+    # samples every 10 ms; one fixation on rows 1..6 (10..60, offset 70); a short
+    # trial [22, 37) holds the single sample at 30 -> its part is exactly 22..37
+    fx = _fix([1], [7], [10], [70])
+    fid = fixation_of_sample(len(T10), fx)
+    bounds = np.array([22.0, 37.0])
+    w_own = sample_weights(T10, fid, fx, bounds)
+    w = w_own + carry_weights(T10, fid, w_own)
+    trial_idx = np.where((T10 >= 22) & (T10 < 37), 0, -1)
+    code = np.full(len(T10), CODE_NONE)
+    parts = fixation_parts(T10, fid, trial_idx, w, code, fx, n_codes=0, w_own=w_own)
+    inside = parts[parts["trial_row"] == 0]
+    assert inside["onset_ms"].tolist() == [22.0] and inside["offset_ms"].tolist() == [37.0]
+    # parts tile the fixation without overlap: 10..22, 22..37, 37..70
+    assert parts["onset_ms"].tolist() == [10.0, 22.0, 37.0]
+    assert parts["offset_ms"].tolist() == [22.0, 37.0, 70.0]

@@ -269,30 +269,12 @@ def _up_to_date(task: SessionTask, fp: dict, with_checks: bool) -> bool:
 
 
 def _load(study, inputs: dict[str, Path], bids: bool):
-    """Read and cross-check a session's inputs (as pipeline.load_session, BIDS-aware)."""
-    from .aois import read_aois, stimulus_check
-    from .pipeline import Session, load_session
-    from .samples import nominal_interval_ms
-    from .trials import read_trials
+    """Read and cross-check a session's inputs (``pipeline.load_session``; BIDS-aware there)."""
+    from .pipeline import load_session
 
-    if not bids:
-        return load_session(inputs["samples"], study, inputs["trials"], inputs["aois"],
-                            inputs.get("checks"))
-    from .bids import read_physio
-
-    samples = read_physio(inputs["samples"], study.samples, study.display)
-    interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
-    trials = read_trials(inputs["trials"], study=study)
-    aois = read_aois(inputs["aois"], stimuli=study.stimuli)
-    stimulus_check(trials, aois, inputs["trials"], inputs["aois"])
-    checks = None
-    if "checks" in inputs:
-        from .quality import read_checks
-        checks = read_checks(inputs["checks"], study=study, samples=samples)
-    paths = {k: Path(inputs[k]) for k in ("samples", "trials", "aois", "checks")
-             if k in inputs}
-    return Session(study=study, samples=samples, interval_ms=interval, trials=trials,
-                   aois=aois, checks=checks, paths=paths)
+    del bids  # read_samples recognises a BIDS recording by its name
+    return load_session(inputs["samples"], study, inputs["trials"], inputs["aois"],
+                        inputs.get("checks"))
 
 
 def _arrow_table(df: pd.DataFrame):

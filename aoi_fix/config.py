@@ -31,6 +31,7 @@ __all__ = [
     "Stimulus",
     "Study",
     "load_study",
+    "read_study_dict",
     "study_from_dict",
     "parse_override",
     "apply_overrides",
@@ -359,15 +360,13 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "study",
     return Study(stimuli=stimuli, **parts)
 
 
-def load_study(path: str | Path, overrides: Iterable[str] = ()) -> Study:
-    """Read a TOML study file and apply ``section.key=value`` overrides.
+def read_study_dict(path: str | Path) -> dict:
+    """Parse a TOML study file into a nested dict (no validation yet).
 
     Raises
     ------
     ConfigError
-        Malformed TOML, an unknown section or key, a wrong type or value.
-    UsageError
-        A malformed or unknown override.
+        A missing or unreadable file, or malformed TOML.
     """
     path = Path(path)
     try:
@@ -382,6 +381,21 @@ def load_study(path: str | Path, overrides: Iterable[str] = ()) -> Study:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise ConfigError(f"{path}: malformed TOML: {e}") from None
+    return data
+
+
+def load_study(path: str | Path, overrides: Iterable[str] = ()) -> Study:
+    """Read a TOML study file and apply ``section.key=value`` overrides.
+
+    Raises
+    ------
+    ConfigError
+        Malformed TOML, an unknown section or key, a wrong type or value.
+    UsageError
+        A malformed or unknown override.
+    """
+    path = Path(path)
+    data = read_study_dict(path)
     return study_from_dict(data, source=str(path), overrides=overrides)
 
 

@@ -21,6 +21,18 @@ FIXATION_OUTPUT_COLUMNS = ["trial", "fixation", "onset_ms", "offset_ms", "durati
                            "x_px", "y_px", "aoi"]
 
 
+def _load_study_for(study_path, samples_path, overrides) -> Study:
+    """Load a study file; for a BIDS recording its sidecars give [samples] and [display]."""
+    if not str(samples_path).endswith("_physio.tsv.gz"):
+        return load_study(study_path, overrides)
+    from .bids import study_for_bids
+    from .config import read_study_dict, study_from_dict
+
+    data = read_study_dict(study_path)
+    return study_from_dict(study_for_bids(samples_path, data), source=str(study_path),
+                           overrides=overrides)
+
+
 def fixations_table(fixations: pd.DataFrame, *, trial=None, aoi=None) -> pd.DataFrame:
     """The public fixation table layout (``fixations.csv``).
 
@@ -65,7 +77,7 @@ def fixations_from_file(samples_path: str | Path, study: Study | str | Path, *,
         The fixation table in the ``fixations.csv`` layout.
     """
     if not isinstance(study, Study):
-        study = load_study(study, overrides)
+        study = _load_study_for(study, samples_path, overrides)
     samples = read_samples(samples_path, study.samples, study.display)
     interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
     fix = detect_fixations(samples, display=study.display, detection=study.detection,
@@ -110,7 +122,7 @@ def load_session(samples_path, study, trials_path, aois_path, checks_path=None, 
     from .trials import read_trials
 
     if not isinstance(study, Study):
-        study = load_study(study, overrides)
+        study = _load_study_for(study, samples_path, overrides)
     samples = read_samples(samples_path, study.samples, study.display)
     interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
     trials = read_trials(trials_path, study=study)

@@ -368,6 +368,9 @@ def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.
         raise InputFormatError(f"{path}: samples file not found")
     if path.is_dir():
         raise InputFormatError(f"{path}: expected a samples file, found a folder")
+    if path.name.endswith("_physio.tsv.gz"):  # a BIDS recording: columns from its sidecar
+        from .bids import read_physio
+        return read_physio(path, cols, display)
     raw = _read_table(path, cols)
     line_of = (lambda i: i + 2) if path.suffix == ".parquet" else _line_scanner(path)
     tidy = tidy_samples(raw, cols, display, source=str(path), line_of=line_of)

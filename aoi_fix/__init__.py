@@ -1,7 +1,8 @@
 """aoi_fix: raw gaze samples to fixations, moving-AOI hits and per-trial tables.
 
 A research tool, not a diagnostic device. The public API is loaded lazily so that
-``aoi-fix --version`` starts fast.
+``aoi-fix --version`` starts fast.  Whole jobs beyond ``convert`` live in their
+modules: ``aoi_fix.sweep.sweep`` and ``aoi_fix.batch.batch``.
 """
 
 from __future__ import annotations
@@ -16,7 +17,8 @@ _EXPORTS = {
     "ivt": "detect", "idt": "detect", "merge_and_discard": "detect",
     "detect_fixations": "detect",
     "fixations_from_file": "pipeline", "convert": "pipeline", "load_session": "pipeline",
-    "run_demo": "demo",
+    "run_demo": "demo", "ivt_pursuit": "pursuit", "check_aois": "aoicheck",
+    "read_bids_samples": "bids",
     "AoiFixError": "errors", "InputFormatError": "errors", "ConfigError": "errors",
     "UsageError": "errors", "NoValidSamplesError": "errors", "OutputError": "errors",
 }

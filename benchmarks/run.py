@@ -8,6 +8,8 @@ two sizes and measures, as whole child processes in the same run:
 * a per-sample Python loop labelling gaze samples with shapely
   ``Point.contains`` against the polygons of their frame (the naive way),
   timed on a subsample and scaled per sample;
+* a 12-setting ``aoi-fix sweep`` (I-VT 4 velocities x 2 minimum durations,
+  I-DT 2 dispersions x 2 minimum durations) with ``-j 2``;
 * peak memory of ``convert`` (``ru_maxrss`` of the child);
 * ``aoi-fix --version`` start-up.
 
@@ -100,7 +102,8 @@ def naive_loop_seconds_per_sample(paths: dict, n_sub: int = 20000) -> float:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description="aoi_fix benchmarks (ratios)")
     ap.add_argument("--small", type=int, default=400_000)
-    ap.add_argument("--big", type=int, default=2_000_000)
+    ap.add_argument("--big", type=int, default=4_000_000)
+    ap.add_argument("--jobs", type=int, default=2, help="-j of the sweep")
     args = ap.parse_args(argv)
     OUT.mkdir(parents=True, exist_ok=True)
     aoi_fix = str(BIN / "aoi-fix")
@@ -117,11 +120,17 @@ def main(argv=None) -> int:
                      "--set", "detection.method=idt"])
         conv = _best([aoi_fix, "convert", s, "--study", st, "--trials", tr, "--aois", ao,
                       "--out-dir", str(folder / "out")])
+        sw = _child([aoi_fix, "sweep", s, "--study", st, "--trials", tr, "--aois", ao,
+                     "--grid", "detection.method=ivt,idt",
+                     "--grid", "detection.velocity_threshold_deg_s=20,30,45,70",
+                     "--grid", "detection.dispersion_threshold_deg=0.75,1.0",
+                     "--grid", "detection.min_fixation_ms=60,100",
+                     "--out-dir", str(folder / "sweep"), "-j", str(args.jobs)])
         res[label] = dict(n=n, read=read[0], ivt=ivt[0], idt=idt[0], convert=conv[0],
-                          convert_mb=conv[1], fix_mb=ivt[1], paths=paths)
+                          sweep=sw[0], convert_mb=conv[1], fix_mb=ivt[1], paths=paths)
         print(f"{label}: {n} samples  read {read[0]:.2f}s  fixations(ivt) {ivt[0]:.2f}s  "
               f"fixations(idt) {idt[0]:.2f}s  convert {conv[0]:.2f}s  "
-              f"peak convert {conv[1]:.0f} MB", flush=True)
+              f"sweep(12) {sw[0]:.2f}s  peak convert {conv[1]:.0f} MB", flush=True)
     a, b = res["small"], res["big"]
     dn = b["n"] - a["n"]
 
@@ -136,6 +145,8 @@ def main(argv=None) -> int:
     print(f"  convert / pyarrow read_csv          : {marg('convert') / marg('read'):.2f}  "
           "[<= 2.0-2.5]")
     print(f"  fixations I-DT / I-VT               : {marg('idt') / marg('ivt'):.2f}  [<= 1.5]")
+    print(f"  12-setting sweep (-j {args.jobs}) / convert  : {marg('sweep') / marg('convert'):.2f}  "
+          "[<= 3]")
     print(f"  naive per-sample shapely loop / convert: {naive / marg('convert'):.0f}x  "
           "[>= 100x]")
     print(f"  time per sample big/small (convert) : "

@@ -133,6 +133,83 @@ def _arrays(samples: pd.DataFrame):
 
 # --------------------------------------------------------------------------- velocity
 
+def _window_bounds(seg: np.ndarray, h: int, rows: np.ndarray):
+    """lo, hi sample rows of the +-h window of ``rows``, clamped to their segment."""
+    s_start, s_end = _segment_bounds(seg)
+    ok = seg[rows] >= 0
+    lo = np.where(ok, np.maximum(rows - h, s_start[rows]), rows)
+    hi = np.where(ok, np.minimum(rows + h, s_end[rows] - 1), rows)
+    return lo, hi, ok
+
+
+def _prepared(samples, display, window_ms, interval_ms, smoothing, smoothing_window_ms):
+    if interval_ms is None:
+        interval_ms = nominal_interval_ms(samples["t_ms"].to_numpy(dtype=float))
+    s = _ensure_filled(samples, interval_ms)
+    t, x, y, seg, _ = _arrays(s)
+    if smoothing == "savgol":
+        x = smooth_savgol(t, x, seg, window_ms=smoothing_window_ms, interval_ms=interval_ms)
+        y = smooth_savgol(t, y, seg, window_ms=smoothing_window_ms, interval_ms=interval_ms)
+    h = max(1, int(round(window_ms / (2.0 * interval_ms))))
+    return t, x, y, seg, h
+
+
+def _speed(t, x, y, seg, h, display) -> np.ndarray:
+    """Windowed angular speed (deg/s) of every sample; NaN for lost samples.
+
+    Lines of sight are unit vectors computed once per sample; the angle
+    between two of them is ``2 asin(chord / 2)``, exact and stable for small
+    angles.
+    Interior samples use shifted slices; only samples whose window reaches a
+    segment's edge are clamped, with gathers.
+    """
+    n = len(t)
+    speed = np.full(n, np.nan)
+    if n < 2:
+        return speed
+    x_mm, y_mm = geometry.px_to_mm(x, y, display)
+    d = float(display.distance_mm)
+    inv = 1.0 / np.sqrt(x_mm * x_mm + y_mm * y_mm + d * d)
+    ux, uy, uz = x_mm * inv, y_mm * inv, d * inv
+    del x_mm, y_mm, inv
+
+    def angle_rate(c2, dt_ms):
+        half = np.sqrt(c2)
+        half *= 0.5
+        np.minimum(half, 1.0, out=half)
+        return np.degrees(2.0 * np.arcsin(half)) * (1000.0 / dt_ms)
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if n > 2 * h:
+            c2 = (ux[2 * h:] - ux[:-2 * h]) ** 2
+            c2 += (uy[2 * h:] - uy[:-2 * h]) ** 2
+            c2 += (uz[2 * h:] - uz[:-2 * h]) ** 2
+            speed[h:n - h] = angle_rate(c2, t[2 * h:] - t[:-2 * h])
+            del c2
+        # samples whose window leaves their segment (or the recording): clamp
+        s_start, s_end = _segment_bounds(seg)
+        idx = np.arange(n)
+        edge = np.flatnonzero((seg >= 0) & ((idx - h < s_start) | (idx + h > s_end - 1)))
+        lo = np.maximum(edge - h, s_start[edge])
+        hi = np.minimum(edge + h, s_end[edge] - 1)
+        c2 = (ux[hi] - ux[lo]) ** 2 + (uy[hi] - uy[lo]) ** 2 + (uz[hi] - uz[lo]) ** 2
+        speed[edge] = angle_rate(c2, t[hi] - t[lo])
+        speed[edge[hi == lo]] = np.nan
+    speed[seg < 0] = np.nan
+    return speed
+
+
+def _components(t, x, y, seg, h, display, rows):
+    """Horizontal and vertical angular velocity (deg/s) at ``rows``."""
+    lo, hi, ok = _window_bounds(seg, h, rows)
+    keep = ok & (hi > lo)
+    lo, hi = lo[keep], hi[keep]
+    axl, ayl = geometry.px_to_deg(x[lo], y[lo], display)
+    axh, ayh = geometry.px_to_deg(x[hi], y[hi], display)
+    dt_s = (t[hi] - t[lo]) / 1000.0
+    return (axh - axl) / dt_s, (ayh - ayl) / dt_s
+
+
 def velocity_deg_s(samples: pd.DataFrame, *, display: "Display", window_ms: float = 20.0,
                    interval_ms: float | None = None, smoothing: str = "none",
                    smoothing_window_ms: float = 20.0):
@@ -152,39 +229,16 @@ def velocity_deg_s(samples: pd.DataFrame, *, display: "Display", window_ms: floa
         Speed in deg/s (NaN for lost samples and single-sample segments) and
         its horizontal and vertical components in deg/s.
     """
-    if interval_ms is None:
-        interval_ms = nominal_interval_ms(samples["t_ms"].to_numpy(dtype=float))
-    s = _ensure_filled(samples, interval_ms)
-    t, x, y, seg, _ = _arrays(s)
-    if smoothing == "savgol":
-        x = smooth_savgol(t, x, seg, window_ms=smoothing_window_ms, interval_ms=interval_ms)
-        y = smooth_savgol(t, y, seg, window_ms=smoothing_window_ms, interval_ms=interval_ms)
+    t, x, y, seg, h = _prepared(samples, display, window_ms, interval_ms, smoothing,
+                                smoothing_window_ms)
     n = len(t)
-    h = max(1, int(round(window_ms / (2.0 * interval_ms))))
-    s_start, s_end = _segment_bounds(seg)
-    idx = np.arange(n)
-    ok = seg >= 0
-    lo = np.where(ok, np.maximum(idx - h, s_start), idx)
-    hi = np.where(ok, np.minimum(idx + h, s_end - 1), idx)
-    dt_s = (t[hi] - t[lo]) / 1000.0
-    # unit lines of sight once per sample; the angle between two of them is
-    # 2 asin(chord / 2), exact and stable for small angles
-    x_mm, y_mm = geometry.px_to_mm(x, y, display)
-    d = float(display.distance_mm)
-    inv = 1.0 / np.sqrt(x_mm * x_mm + y_mm * y_mm + d * d)
-    ux, uy, uz = x_mm * inv, y_mm * inv, d * inv
-    with np.errstate(invalid="ignore", divide="ignore"):
-        chord = np.sqrt((ux[hi] - ux[lo]) ** 2 + (uy[hi] - uy[lo]) ** 2
-                        + (uz[hi] - uz[lo]) ** 2)
-        speed = np.degrees(2.0 * np.arcsin(np.minimum(chord / 2.0, 1.0))) / dt_s
-        axd = np.degrees(np.arctan2(x_mm, d))
-        ayd = np.degrees(np.arctan2(y_mm, d))
-        vx = (axd[hi] - axd[lo]) / dt_s
-        vy = (ayd[hi] - ayd[lo]) / dt_s
-    bad = ~ok | (hi == lo)
-    speed[bad] = np.nan
-    vx[bad] = np.nan
-    vy[bad] = np.nan
+    speed = _speed(t, x, y, seg, h, display)
+    vx = np.full(n, np.nan)
+    vy = np.full(n, np.nan)
+    rows = np.arange(n)
+    lo, hi, ok = _window_bounds(seg, h, rows)
+    keep = ok & (hi > lo)
+    vx[keep], vy[keep] = _components(t, x, y, seg, h, display, rows[keep])
     return speed, vx, vy
 
 
@@ -214,10 +268,16 @@ def velocity_and_noise(samples: pd.DataFrame, *, display: "Display", window_ms: 
     """Windowed speed (deg/s) of every sample and the robust noise SD (deg/s).
 
     What :func:`ivt` needs before its threshold; independent of the threshold.
+    The noise SD comes from the velocity components of a regular stride of at
+    most 200,000 samples (see :func:`noise_velocity_deg_s`).
     """
-    speed, vx, vy = velocity_deg_s(samples, display=display, window_ms=window_ms,
-                                   interval_ms=interval_ms, smoothing=smoothing,
-                                   smoothing_window_ms=smoothing_window_ms)
+    t, x, y, seg, h = _prepared(samples, display, window_ms, interval_ms, smoothing,
+                                smoothing_window_ms)
+    speed = _speed(t, x, y, seg, h, display)
+    rows = np.flatnonzero(np.isfinite(speed))
+    if len(rows) > _NOISE_SAMPLE_CAP:
+        rows = rows[::int(np.ceil(len(rows) / _NOISE_SAMPLE_CAP))]
+    vx, vy = _components(t, x, y, seg, h, display, rows)
     return speed, noise_velocity_deg_s(vx, vy)
 
 

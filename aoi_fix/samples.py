@@ -302,16 +302,25 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     lim_x = cols.max_offscreen_frac * display.width_px
     lim_y = cols.max_offscreen_frac * display.height_px
 
+    def number(name: str, scale: float) -> np.ndarray:
+        col = raw[name]
+        if not pd.api.types.is_float_dtype(col):
+            col = pd.to_numeric(col, errors="coerce")
+        out = np.array(col.to_numpy(dtype=float, na_value=np.nan), dtype=float)  # own copy
+        if scale != 1.0:
+            out *= scale
+        return out
+
     def eye(xn: str, yn: str, vn: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        x = pd.to_numeric(raw[xn], errors="coerce").to_numpy(dtype=float, na_value=np.nan) * sx
-        y = pd.to_numeric(raw[yn], errors="coerce").to_numpy(dtype=float, na_value=np.nan) * sy
-        ok = np.isfinite(x) & np.isfinite(y)
-        ok &= (x >= -lim_x) & (x <= display.width_px + lim_x)
-        ok &= (y >= -lim_y) & (y <= display.height_px + lim_y)
+        x = number(xn, sx)
+        y = number(yn, sy)
+        with np.errstate(invalid="ignore"):
+            ok = (x >= -lim_x) & (x <= display.width_px + lim_x)  # False for NaN
+            ok &= (y >= -lim_y) & (y <= display.height_px + lim_y)
         if vn:
             ok &= _valid_from(raw[vn], cols, Path(source), vn, line_of)
-        x = np.where(ok, x, np.nan)
-        y = np.where(ok, y, np.nan)
+        x[~ok] = np.nan
+        y[~ok] = np.nan
         return x, y, ok
 
     out = {"t_ms": t_ms}
@@ -334,7 +343,7 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     else:
         x, y, ok = eye(cols.x, cols.y, cols.valid)
         out.update(x_px=x, y_px=y, valid=ok)
-    return pd.DataFrame(out)
+    return pd.DataFrame(out, copy=False)
 
 
 def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.DataFrame:

@@ -23,6 +23,13 @@ pyarrow, polars, DuckDB, R arrow or Spark read as one table with a
 status (``converted``, ``skipped`` or ``failed``), a one-line message and the
 seconds it took.
 
+With a participants table (``participants=``, :mod:`aoi_fix.cohort`) every
+table gets ``participant, age_days, age_months``, each session also gets
+``session_summary`` and ``exclusions`` (in its folder and in the dataset),
+and the cohort is stacked into ``OUT/cohort_session_summary.csv`` and
+``OUT/cohort_exclusions.csv`` with a JSON data dictionary per table.  The
+session's participant row is part of its fingerprint.
+
 Incremental runs
 ----------------
 A session is *skipped* when its folder holds a complete earlier conversion
@@ -72,7 +79,8 @@ log = logging.getLogger(__name__)
 #: Columns of ``batch_report.csv``.
 REPORT_COLUMNS = ["session", "status", "message", "seconds"]
 #: Tables a session may produce (``check_quality`` only with checks).
-SESSION_TABLES = ("fixations", "aoi_summary", "trial_quality", "check_quality")
+SESSION_TABLES = ("fixations", "aoi_summary", "trial_quality", "check_quality",
+                  "session_summary", "exclusions")
 #: A session id: 1-64 letters, digits, ``.``, ``_`` or ``-``, starting with a letter or digit.
 SESSION_ID_PATTERN = r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}"
 _SESSION_ID = re.compile(rf"^{SESSION_ID_PATTERN}$")
@@ -192,6 +200,7 @@ class SessionTask:
     force: bool = False
     overrides: tuple = ()
     known_sha256: dict = field(default_factory=dict)
+    participant: dict | None = None  # {"participant", "age_days"} with --participants
 
 
 def _read_study_dict(path: Path) -> dict:
@@ -244,13 +253,18 @@ def _fingerprint(task: SessionTask, study, inputs: dict[str, Path]) -> dict:
         sha[role] = task.known_sha256.get(key) or sha256_file(p)
     fp = {"aoi_fix_version": __version__, "format": task.fmt, "inputs_sha256": sha,
           "parameters": study.to_dict()}
+    if task.participant is not None:
+        fp["participant"] = {k: v for k, v in task.participant.items() if k != "file"}
     return json.loads(json.dumps(fp, default=str))  # as it reads back from the manifest
 
 
-def _expected_files(out_dir: Path, session: str, fmt: str, with_checks: bool) -> list[Path]:
+def _expected_files(out_dir: Path, session: str, fmt: str, with_checks: bool,
+                    with_cohort: bool = False) -> list[Path]:
+    from .cohort import COHORT_TABLES
     from .output import table_suffix
 
-    names = [t for t in SESSION_TABLES if with_checks or t != "check_quality"]
+    names = [t for t in SESSION_TABLES if (with_checks or t != "check_quality")
+             and (with_cohort or t not in COHORT_TABLES)]
     folder = session_folder(out_dir, session)
     files = [folder / "manifest.json"] + [folder / f"{t}{table_suffix(fmt)}" for t in names]
     files += [Path(out_dir) / DATASET / t / f"session={session}" / _PART for t in names]
@@ -258,7 +272,8 @@ def _expected_files(out_dir: Path, session: str, fmt: str, with_checks: bool) ->
 
 
 def _up_to_date(task: SessionTask, fp: dict, with_checks: bool) -> bool:
-    files = _expected_files(task.out_dir, task.session, task.fmt, with_checks)
+    files = _expected_files(task.out_dir, task.session, task.fmt, with_checks,
+                            task.participant is not None)
     if not all(f.is_file() for f in files):
         return False
     try:
@@ -320,7 +335,7 @@ def _write_partitions(out_dir: Path, session: str, tables: dict) -> None:
     present = [t for t in SESSION_TABLES if t in tables]
     with AtomicOutputs() as w:
         for t in present:
-            table = _arrow_table(tables[t])
+            table = _arrow_table(tables[t].drop(columns="session", errors="ignore"))
             w.file(root / t / f"session={session}" / _PART,
                    lambda tmp, table=table: pq.write_table(table, tmp))
     for t in SESSION_TABLES:
@@ -347,6 +362,12 @@ def _convert_one(task: SessionTask) -> tuple[str, str]:
         return "skipped", "inputs and parameters unchanged"
     session = _load(study, inputs, bids)
     tables = convert_session(session)
+    if task.participant is not None:
+        from .cohort import add_cohort_tables
+        tables = add_cohort_tables(tables, session=task.session, quality=study.quality,
+                                   participant=task.participant["participant"],
+                                   age_days=task.participant["age_days"],
+                                   participants_path=task.participant.get("file"))
     tables["manifest"]["batch"] = {
         "session": task.session,
         "inputs": {k: str(v) for k, v in inputs.items()},
@@ -355,11 +376,18 @@ def _convert_one(task: SessionTask) -> tuple[str, str]:
     }
     folder = session_folder(task.out_dir, task.session)
     _write_partitions(task.out_dir, task.session, tables)
-    written = write_outputs(tables, folder, task.fmt, session=session)
+    from .cohort import write_session_outputs
+    written = write_session_outputs(tables, folder, task.fmt, session=session)
     _remove_stale_tables(folder, written)
     acc = tables["manifest"]["samples"]
+    tail = ""
+    if "exclusions" in tables["manifest"]:
+        ex = tables["manifest"]["exclusions"]
+        tail = (", session excluded" if ex["session_excluded"] else
+                f", {ex['trials_excluded']} excluded")
     return "converted", (f"{len(tables['fixations'])} fixations, "
-                         f"{len(tables['trial_quality'])} trials, {acc['total']} samples")
+                         f"{len(tables['trial_quality'])} trials{tail}, "
+                         f"{acc['total']} samples")
 
 
 def run_session(task: SessionTask) -> dict:
@@ -446,10 +474,16 @@ def combine_sessions(out_dir: str | Path) -> pd.DataFrame:
                 if f.is_file():
                     tables[t] = read_table(f)
                     break
+        if "session_summary" in tables or "exclusions" in tables:
+            from .cohort import typed_tables
+            tables = typed_tables(tables)
         _write_partitions(out_dir, sid, tables)
         sessions.append(sid)
     _prune_dataset(out_dir, set(sessions))
     _write_index(out_dir, sessions)
+    if (out_dir / DATASET / "session_summary").is_dir():
+        from .cohort import write_cohort
+        write_cohort(out_dir, sessions=sessions)
     return pd.read_csv(out_dir / DATASET / INDEX, dtype=str, keep_default_na=False)
 
 
@@ -530,7 +564,8 @@ def _run_dask(tasks: list[SessionTask], scheduler: str, done: Callable[[dict], N
 
 def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv",
           force: bool = False, overrides=(), scheduler: str | None = None,
-          progress: Callable[[int, int, dict | None], None] | None = None) -> pd.DataFrame:
+          progress: Callable[[int, int, dict | None], None] | None = None,
+          participants=None, plots: bool = False) -> pd.DataFrame:
     """Convert every session of a session table; skip those already up to date.
 
     Parameters
@@ -563,6 +598,16 @@ def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv"
         Called as ``progress(0, n, None)`` before the first session and
         ``progress(done, n, row)`` as each session finishes (in completion
         order) with its report row.
+    participants : path, optional
+        Participants table (:func:`aoi_fix.cohort.read_participants`): adds
+        ``participant, age_days, age_months`` to every table, writes
+        ``session_summary`` and ``exclusions`` per session and the cohort
+        files ``cohort_session_summary.csv`` and ``cohort_exclusions.csv``
+        with their data dictionary (``docs/cohort.md``).  Every session must
+        have a row.
+    plots : bool
+        With ``participants``: also ``qc_exclusions.png``, trials used and
+        excluded per session (needs matplotlib).
 
     Returns
     -------
@@ -573,7 +618,8 @@ def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv"
     Raises
     ------
     UsageError
-        A bad ``fmt``, ``jobs`` or override, or ``scheduler`` without Dask.
+        A bad ``fmt``, ``jobs`` or override, ``scheduler`` without Dask, or
+        ``plots`` without ``participants`` or matplotlib.
     InputFormatError, ConfigError, OutputError
         A bad session table (naming the line), an unreadable main study or
         AOI file, or an output folder that is a file; raised before any
@@ -601,11 +647,25 @@ def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv"
         raise InputFormatError(f"{aois}: AOI file not found" if not aois.exists() else
                                f"{aois}: expected an AOI file, found a folder")
     rows = read_session_table(sessions_csv)
+    who: dict[str, dict] = {}
+    if plots:
+        if participants is None:
+            raise UsageError("--plots on batch draws the cohort QC figure and needs "
+                             "--participants")
+        from .plots import require_matplotlib
+        require_matplotlib()
+    if participants is not None:
+        from .cohort import participant_of_sessions, read_participants
+        ptable = read_participants(participants)
+        for sid, info in participant_of_sessions(ptable, [r["session"] for r in rows]).items():
+            who[sid] = {"participant": info["participant"], "age_days": info["age_days"],
+                        "file": str(Path(participants).resolve())}
     known = {str(study.resolve()): sha256_file(study), str(aois.resolve()): sha256_file(aois)}
     tasks = [SessionTask(session=r["session"], samples=r["samples"], trials=r["trials"],
                          checks=r["checks"], study=r["study"] or study.resolve(),
                          aois=aois.resolve(), out_dir=out_dir, fmt=fmt, force=force,
-                         overrides=overrides, known_sha256=known)
+                         overrides=overrides, known_sha256=known,
+                         participant=who.get(r["session"]))
              for r in rows]
     out_dir.mkdir(parents=True, exist_ok=True)
     results: dict[str, dict] = {}
@@ -629,5 +689,12 @@ def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv"
     ok = [t.session for t in tasks if results[t.session]["status"] != "failed"]
     _prune_dataset(out_dir, set(ok))
     _write_index(out_dir, ok)
+    from .cohort import remove_cohort_files, write_cohort
+    if participants is not None:
+        write_cohort(out_dir, sessions=[t.session for t in tasks], plots=plots,
+                     failed=[{"session": t.session, **who[t.session]} for t in tasks
+                             if results[t.session]["status"] == "failed"])
+    else:
+        remove_cohort_files(out_dir)
     write_table(report, out_dir / REPORT)
     return report

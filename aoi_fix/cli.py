@@ -95,13 +95,21 @@ def convert(
     fmt: str = typer.Option("csv", "--format", help=FORMAT_HELP),
     plots: bool = typer.Option(False, "--plots", help="Also write QC figures (needs the "
                                                        "plots extra: matplotlib)."),
+    participants: Optional[Path] = typer.Option(
+        None, "--participants", help="Participants table (participant, session, age_days | "
+                                     "birth_date, session_date; or BIDS participants.tsv): "
+                                     "adds ages, session_summary and exclusions."),
+    session: Optional[str] = typer.Option(
+        None, "--session", help="This session's id in --participants (default: the "
+                                "--out-dir name session=<id>)."),
 ) -> None:
     """Convert one session: fixations, AOI hits on moving regions, per-trial tables."""
     from .pipeline import convert as run
 
     _check_format(fmt)
     tables = run(samples, study=study, trials=trials, aois=aois, checks=checks,
-                 out_dir=out_dir, fmt=fmt, overrides=set_ or (), plots=plots)
+                 out_dir=out_dir, fmt=fmt, overrides=set_ or (), plots=plots,
+                 participants=participants, session=session)
     n = tables["manifest"]["samples"]
     typer.echo(f"{len(tables['fixations'])} fixations, {len(tables['trial_quality'])} trials, "
                f"{n['total']} samples accounted for; tables in {out_dir}", err=True)
@@ -238,6 +246,14 @@ def batch(
                                             help="Run the sessions on a Dask distributed "
                                                  "scheduler at this address (needs the "
                                                  "cluster extra)."),
+    participants: Optional[Path] = typer.Option(
+        None, "--participants", help="Participants table (participant, session, age_days | "
+                                     "birth_date, session_date; or BIDS participants.tsv): "
+                                     "adds ages and the cohort session_summary and "
+                                     "exclusions tables."),
+    plots: bool = typer.Option(False, "--plots", help="With --participants: also draw "
+                                                      "qc_exclusions.png (needs the plots "
+                                                      "extra)."),
 ) -> None:
     """Convert a cohort: every session of a table, incremental, parallel, one report."""
     from .batch import batch as run
@@ -271,7 +287,7 @@ def batch(
     try:
         report = run(sessions, study=study, aois=aois, out_dir=out_dir, jobs=jobs, fmt=fmt,
                      force=force, overrides=set_ or (), scheduler=scheduler,
-                     progress=progress)
+                     progress=progress, participants=participants, plots=plots)
     finally:
         if "p" in bar:
             bar["p"].stop()

@@ -169,6 +169,14 @@ class Quality:
     check_max_offset_deg: float = _opt(5.0, doc="a check fixation farther than this from "
                                                 "its target is not used", min=0,
                                        min_inclusive=False)
+    exclude_low_validity: bool = _opt(True, doc="session tables: drop trials with "
+                                                "flag_low_validity (listed in exclusions)")
+    exclude_drift: bool = _opt(True, doc="session tables: drop trials with flag_drift "
+                                         "(listed in exclusions)")
+    min_trial_fixation_ms: float = _opt(0.0, doc="session tables: drop trials with less "
+                                                 "fixation time than this (0 = none)", min=0)
+    min_session_trials: int = _opt(1, doc="session tables: drop a session with fewer "
+                                          "usable trials than this", min=0)
 
 
 @dataclass(frozen=True)

@@ -419,7 +419,7 @@ def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv", *,
         raise OutputError(f"{out_dir}: expected an output folder, found a file")
     written = []
     with AtomicOutputs() as w:
-        for name in OUTPUT_TABLES + ("check_quality",):
+        for name in OUTPUT_TABLES + ("check_quality", "session_summary", "exclusions"):
             if name in tables:
                 written.append(w.table(tables[name], out_dir / f"{name}{table_suffix(fmt)}",
                                        fmt))
@@ -439,7 +439,8 @@ def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv", *,
 
 
 def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str = "csv",
-            overrides=(), plots: bool = False) -> dict:
+            overrides=(), plots: bool = False, participants=None,
+            session: str | None = None) -> dict:
     """Convert one session: fixations, AOI per fixation, per-trial tables.
 
     Parameters
@@ -455,18 +456,37 @@ def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str
     fmt : {"csv", "parquet"}
     plots : bool
         Also write QC figures (needs matplotlib, the ``plots`` extra).
+    participants : path, optional
+        Participants table (:func:`aoi_fix.cohort.read_participants`): adds
+        ``participant, age_days, age_months`` to every table and the
+        ``session_summary`` and ``exclusions`` tables (``docs/cohort.md``).
+    session : str, optional
+        The session's id in ``participants`` (default: ``out_dir``'s name
+        when it is ``session=<id>``).
 
     Returns
     -------
     dict
         ``fixations``, ``aoi_summary``, ``trial_quality`` DataFrames and the
-        ``manifest`` dict.
+        ``manifest`` dict (with ``participants``: also ``session_summary`` and
+        ``exclusions``).
     """
     if plots:
         from .plots import require_matplotlib
         require_matplotlib()
-    session = load_session(samples, study, trials, aois, checks, overrides=overrides)
-    tables = convert_session(session)
+    info = None
+    if participants is not None:
+        from .cohort import participant_of_sessions, read_participants, session_from_out_dir
+        sid = session_from_out_dir(out_dir, session)
+        info = participant_of_sessions(read_participants(participants), [sid])[sid]
+    loaded = load_session(samples, study, trials, aois, checks, overrides=overrides)
+    tables = convert_session(loaded)
+    if info is not None:
+        from .cohort import add_cohort_tables
+        tables = add_cohort_tables(tables, session=sid, participant=info["participant"],
+                                   age_days=info["age_days"], quality=loaded.study.quality,
+                                   participants_path=Path(participants).resolve())
     if out_dir is not None:
-        write_outputs(tables, out_dir, fmt, session=session, plots=plots)
+        from .cohort import write_session_outputs
+        write_session_outputs(tables, out_dir, fmt, session=loaded, plots=plots)
     return {k: v for k, v in tables.items() if not k.startswith("_")}

@@ -59,7 +59,6 @@ import logging
 import re
 import shutil
 import time
-import tomllib
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -68,6 +67,7 @@ from typing import Callable, Iterable
 import numpy as np
 import pandas as pd
 
+from .config import read_study_dict
 from .errors import AoiFixError, ConfigError, InputFormatError, OutputError, UsageError
 
 __all__ = ["batch", "read_session_table", "run_session", "combine_sessions", "read_combined",
@@ -203,27 +203,12 @@ class SessionTask:
     participant: dict | None = None  # {"participant", "age_days"} with --participants
 
 
-def _read_study_dict(path: Path) -> dict:
-    try:
-        text = Path(path).read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise ConfigError(f"{path}: study file not found") from None
-    except IsADirectoryError:
-        raise ConfigError(f"{path}: expected a TOML study file, found a folder") from None
-    except UnicodeDecodeError as e:
-        raise ConfigError(f"{path}: not UTF-8 text (byte {e.start})") from None
-    try:
-        return tomllib.loads(text)
-    except tomllib.TOMLDecodeError as e:
-        raise ConfigError(f"{path}: malformed TOML: {e}") from None
-
-
 def _resolve(task: SessionTask):
     """The session's Study, whether it is BIDS, and its input files by role."""
     from .bids import bids_inputs, is_bids_physio, study_for_bids
     from .config import study_from_dict
 
-    data = _read_study_dict(task.study)
+    data = read_study_dict(task.study)
     bids = is_bids_physio(task.samples)
     inputs: dict[str, Path] = {"samples": task.samples, "trials": task.trials,
                                "aois": task.aois, "study": task.study}
@@ -640,7 +625,7 @@ def batch(sessions_csv, *, study, aois, out_dir, jobs: int = 1, fmt: str = "csv"
     if out_dir.exists() and not out_dir.is_dir():
         raise OutputError(f"{out_dir}: expected an output folder, found a file")
     study, aois = Path(study), Path(aois)
-    data = _read_study_dict(study)
+    data = read_study_dict(study)
     if "display" in data and "samples" in data:
         study_from_dict(data, source=str(study), overrides=overrides)  # fail fast
     if not aois.is_file():

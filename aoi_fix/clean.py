@@ -50,11 +50,10 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
     >>> out["x_px"].tolist()[:3], out["segment"].tolist()
     ([0.0, 1.0, 2.0], [0, 0, 0, 0, -1, 1, 1])
     """
-    out = samples.copy()
-    t = out["t_ms"].to_numpy(dtype=float)
-    x = out["x_px"].to_numpy(dtype=float).copy()
-    y = out["y_px"].to_numpy(dtype=float).copy()
-    valid = out["valid"].to_numpy(dtype=bool)
+    t = samples["t_ms"].to_numpy(dtype=float)
+    x = np.array(samples["x_px"].to_numpy(dtype=float), dtype=float)  # own copies
+    y = np.array(samples["y_px"].to_numpy(dtype=float), dtype=float)
+    valid = samples["valid"].to_numpy(dtype=bool)
     n = len(t)
     filled = np.zeros(n, dtype=bool)
     segment = np.full(n, -1, dtype=np.int64)
@@ -73,9 +72,11 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
             inside = (pos >= 0) & (pos < len(vi) - 1)
             inv, pos = inv[inside], pos[inside]
             take = fill_gap[pos]
-            inv = inv[take]
-            x[inv] = np.interp(t[inv], t[vi], x[vi])
-            y[inv] = np.interp(t[inv], t[vi], y[vi])
+            inv, pos = inv[take], pos[take]
+            a, b = vi[pos], vi[pos + 1]  # the valid samples on either side
+            frac = (t[inv] - t[a]) / (t[b] - t[a])
+            x[inv] = x[a] + frac * (x[b] - x[a])
+            y[inv] = y[a] + frac * (y[b] - y[a])
             filled[inv] = True
         # segments: consecutive valid samples joined by bridged gaps
         seg_of_valid = np.concatenate([[0], np.cumsum(~bridge)])
@@ -84,11 +85,9 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
         if len(inv_f):
             pos = np.searchsorted(vi, inv_f) - 1
             segment[inv_f] = seg_of_valid[pos]
-    out["x_px"] = x
-    out["y_px"] = y
-    out["filled"] = filled
-    out["segment"] = segment
-    return out
+    cols = {c: samples[c].to_numpy() for c in samples.columns}
+    cols.update(x_px=x, y_px=y, filled=filled, segment=segment)
+    return pd.DataFrame(cols, index=samples.index, copy=False)
 
 
 def smooth_savgol(t_ms: np.ndarray, values: np.ndarray, segment: np.ndarray, *,

@@ -222,23 +222,30 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         has_pos &= rows
     code[has_pos & ~onv] = CODE_OFF_VIDEO
     margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
+    # trials showing the same video at the same scale share one vectorised call
+    stimuli_with_aois = set(session.aois.stimuli())
     names_by_trial = []
-    order = np.argsort(trial_idx, kind="stable")
-    bounds = np.searchsorted(trial_idx[order], np.arange(len(trials) + 1))
-    for k in range(len(trials)):  # a loop over trials
+    group_of_trial = np.full(len(trials), -1, dtype=np.int64)
+    groups: dict[tuple, int] = {}
+    for k in range(len(trials)):  # a loop over trials (no sample work)
         stim = trials["stimulus"].iat[k]
-        names = session.aois.names(stim, study.aois.priority) if stim in session.aois.stimuli() \
-            else ()
+        names = session.aois.names(stim, study.aois.priority) \
+            if stim in stimuli_with_aois else ()
         names_by_trial.append(tuple(names))
-        rows = order[bounds[k]:bounds[k + 1]]
-        rows = rows[has_pos[rows] & onv[rows]]
+        scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
+        key = (stim, float(margin_screen_px[0]) * scale)
+        group_of_trial[k] = groups.setdefault(key, len(groups))
+    rows_all = np.flatnonzero(has_pos & onv)
+    group_of_row = group_of_trial[trial_idx[rows_all]]
+    order = np.argsort(group_of_row, kind="stable")
+    bounds = np.searchsorted(group_of_row[order], np.arange(len(groups) + 1))
+    for (stim, margin_vid), g in groups.items():  # a loop over (video, scale) groups
+        rows = rows_all[order[bounds[g]:bounds[g + 1]]]
         if len(rows) == 0:
             continue
-        if not names:
+        if stim not in stimuli_with_aois:
             code[rows] = CODE_NONE
             continue
-        scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
-        margin_vid = float(margin_screen_px[0]) * scale
         code[rows] = match_points(session.aois, stim, frame[rows], xv[rows], yv[rows],
                                   margin_px=margin_vid, priority=study.aois.priority)
     return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)

@@ -25,7 +25,7 @@ from aoi_fix.errors import ConfigError, InputFormatError
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures" / "aois"
 STIMULI = {"clip": Stimulus(fps=25.0, width_px=200, height_px=100),
-           "talk": Stimulus(fps=30.0, width_px=100, height_px=100)}
+           "speaker": Stimulus(fps=30.0, width_px=100, height_px=100)}
 HEADER = "stimulus,frame,aoi,wkt\n"
 SQUARE = '"POLYGON ((10 10, 30 10, 30 30, 10 30, 10 10))"'
 
@@ -54,9 +54,9 @@ def write(text: str, name: str = "aois.csv") -> Path:
 def test_names_in_priority_order_by_median_area(table):
     # areas: pair 2 x 100 = 200, mover 100 each frame, square 400,
     # donut 40*40 - 20*20 = 1200  -> smallest first.
-    assert table.stimuli() == ("clip", "talk")
+    assert table.stimuli() == ("clip", "speaker")
     assert table.names("clip") == ("mover", "pair", "square", "donut")
-    assert table.names("talk") == ("eye", "face")
+    assert table.names("speaker") == ("eye", "face")
     assert table.frames("clip").tolist() == [0, 1, 3]
     assert table.names("unknown") == ()
 
@@ -131,14 +131,14 @@ def test_nan_and_no_frame_give_minus_one(table):
 def test_overlap_priority_default_and_explicit(table):
     # eye (200 px^2) lies inside face (10000 px^2): the smaller AOI wins by default.
     pts = [(30, 25), (50, 50), (21, 25)]
-    assert hits(table, "talk", 0, pts) == ["eye", "face", "eye"]
-    assert hits(table, "talk", 1, pts) == ["eye", "face", "face"]   # the eye moved right
-    assert table.names("talk", ["face"]) == ("face", "eye")
-    assert hits(table, "talk", 0, pts, priority=["face"]) == ["face", "face", "face"]
+    assert hits(table, "speaker", 0, pts) == ["eye", "face", "eye"]
+    assert hits(table, "speaker", 1, pts) == ["eye", "face", "face"]   # the eye moved right
+    assert table.names("speaker", ["face"]) == ("face", "eye")
+    assert hits(table, "speaker", 0, pts, priority=["face"]) == ["face", "face", "face"]
     # a name of another stimulus is skipped here, a name of none is a typo
-    assert table.names("talk", ["square", "eye"]) == ("eye", "face")
+    assert table.names("speaker", ["square", "eye"]) == ("eye", "face")
     with pytest.raises(ConfigError, match="aois.priority.*'nose'"):
-        table.names("talk", ["nose"])
+        table.names("speaker", ["nose"])
 
 
 def test_priority_uses_median_area_and_breaks_ties_by_name():
@@ -269,7 +269,7 @@ BASE = read_aois(FIXTURES / "shapes.csv", stimuli=STIMULI)
 @given(st.permutations(ROWS))
 def test_row_order_of_the_file_does_not_matter(rows):
     t = read_aois(write(HEADER + "\n".join(rows) + "\n"), stimuli=STIMULI)
-    for stim in ("clip", "talk"):
+    for stim in ("clip", "speaker"):
         assert t.names(stim) == BASE.names(stim)
         np.testing.assert_array_equal(match_points(t, stim, PF, PX, PY, margin_px=1.0),
                                       match_points(BASE, stim, PF, PX, PY, margin_px=1.0))
@@ -382,11 +382,11 @@ def test_bom_crlf_and_trailing_blank_lines():
 
 
 def test_stimulus_check_names_the_aoi_row():
-    p = write(HEADER + f"clip,,a,{SQUARE}\ntalk,0,b,{SQUARE}\ntalk,1,b,{SQUARE}\n")
+    p = write(HEADER + f"clip,,a,{SQUARE}\nspeaker,0,b,{SQUARE}\nspeaker,1,b,{SQUARE}\n")
     aois = read_aois(p, stimuli=STIMULI)
     trials = pd.DataFrame({"stimulus": ["clip"]})
     with pytest.raises(InputFormatError) as e:
         stimulus_check(trials, aois, "trials.csv", p)
-    assert str(e.value) == (f"{p}: row 3, column 'stimulus': found 'talk', which no trial in "
+    assert str(e.value) == (f"{p}: row 3, column 'stimulus': found 'speaker', which no trial in "
                             "trials.csv shows; expected one of 'clip'")
-    stimulus_check(pd.DataFrame({"stimulus": ["clip", "talk", "clip"]}), aois, "t.csv", p)
+    stimulus_check(pd.DataFrame({"stimulus": ["clip", "speaker", "clip"]}), aois, "t.csv", p)

@@ -29,7 +29,7 @@ def make_study(time_unit: str = "ms"):
         "samples": {"time": "t", "x": "x", "y": "y", "time_unit": time_unit},
         "stimuli": {
             "clip": {"fps": 25.0, "width_px": 640, "height_px": 480},    # 4:3
-            "talk": {"fps": 30.0, "width_px": 1280, "height_px": 720},   # 16:9, fills
+            "speaker": {"fps": 30.0, "width_px": 1280, "height_px": 720},   # 16:9, fills
             "wide": {"fps": 25.0, "width_px": 2000, "height_px": 500},   # 4:1
             "tall": {"fps": 25.0, "width_px": 480, "height_px": 960},    # 1:2
         },
@@ -185,7 +185,7 @@ def test_missing_file(tmp_path):
 
 # --------------------------------------------------------------------------- per-sample maps
 
-TR = pd.DataFrame({"trial": ["b", "a"], "stimulus": ["talk", "clip"],
+TR = pd.DataFrame({"trial": ["b", "a"], "stimulus": ["speaker", "clip"],
                    "start_ms": [200.0, 0.0], "end_ms": [300.0, 100.0],
                    "media_x_px": [0.0, 240.0], "media_y_px": [0.0, 0.0],
                    "media_width_px": [1920.0, 1440.0], "media_height_px": [1080.0, 1080.0]})
@@ -219,7 +219,7 @@ def test_assign_trials_matches_brute_force(gaps_lengths, times):
 
 def test_frame_index_by_hand():
     # clip at 25 fps: a frame lasts 40 ms; trial "a" is 0..100 ms -> ceil(2.5) = 3 frames.
-    # talk at 30 fps: 100 ms -> 3 frames of 33.33 ms, trial "b" starts at 200 ms.
+    # speaker at 30 fps: 100 ms -> 3 frames of 33.33 ms, trial "b" starts at 200 ms.
     t = np.array([0, 39.99, 40, 80, 99.99, 120, 200, 233.3, 233.34, 266.67, 299.9])
     idx = assign_trials(t, TR)
     got = frame_index(t, idx, TR, STUDY.stimuli)

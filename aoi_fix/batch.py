@@ -68,7 +68,8 @@ import numpy as np
 import pandas as pd
 
 from .config import read_study_dict
-from .errors import AoiFixError, ConfigError, InputFormatError, OutputError, UsageError
+from .errors import (AoiFixError, ConfigError, InputFormatError, OutputError, UsageError,
+                     read_text)
 
 __all__ = ["batch", "read_session_table", "run_session", "combine_sessions", "read_combined",
            "session_folder", "SessionTask", "REPORT_COLUMNS", "SESSION_TABLES",
@@ -124,15 +125,7 @@ def read_session_table(path: str | Path) -> list[dict]:
         some file systems ignore case).  The message names the line.
     """
     path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise InputFormatError(f"{path}: session table not found") from None
-    except IsADirectoryError:
-        raise InputFormatError(f"{path}: expected a session table (CSV), found a folder") \
-            from None
-    except UnicodeDecodeError as e:
-        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what="session table", expected="a session table (CSV)")
     lines = text.splitlines()
     reader = csv.reader(lines)
     header = None

@@ -76,7 +76,7 @@ import numpy as np
 import pandas as pd
 
 from .config import Display, SampleColumns, study_from_dict
-from .errors import ConfigError, InputFormatError, NoValidSamplesError
+from .errors import ConfigError, InputFormatError, NoValidSamplesError, read_text
 
 __all__ = ["PHYSIO_SUFFIX", "SYNTHETIC_TIME", "is_bids_physio", "physio_sidecar_path",
            "events_sidecars", "bids_inputs", "bids_samples_section", "bids_display",
@@ -130,14 +130,7 @@ def physio_sidecar_path(path: str | Path) -> Path:
 
 
 def _read_json(path: Path, what: str) -> dict:
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise InputFormatError(f"{path}: {what} not found") from None
-    except IsADirectoryError:
-        raise InputFormatError(f"{path}: expected a JSON {what}, found a folder") from None
-    except UnicodeDecodeError as e:
-        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what=what, expected=f"a JSON {what}")
     try:
         data = json.loads(text)
     except json.JSONDecodeError as e:

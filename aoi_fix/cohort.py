@@ -33,7 +33,7 @@ from typing import Iterable, Mapping
 import numpy as np
 import pandas as pd
 
-from .errors import InputFormatError, UsageError
+from .errors import InputFormatError, UsageError, read_text
 
 __all__ = ["read_participants", "participant_of_sessions", "trial_exclusions",
            "session_summary", "add_cohort_tables", "write_session_outputs", "write_cohort",
@@ -83,15 +83,7 @@ _SUB = re.compile(r"^sub-[A-Za-z0-9]+$")
 
 def _read_rows(path: Path) -> tuple[list[str], list[tuple[int, list[str]]], str]:
     """Header, (line, cells) of the non-blank data rows, and the delimiter."""
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise InputFormatError(f"{path}: participants table not found") from None
-    except IsADirectoryError:
-        raise InputFormatError(f"{path}: expected a participants table, found a folder") \
-            from None
-    except UnicodeDecodeError as e:
-        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what="participants table", expected="a participants table")
     lines = text.splitlines()
     first = next((i for i, ln in enumerate(lines) if ln.strip()), None)
     if first is None:

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
-from .errors import ConfigError, OverrideError, UsageError
+from .errors import ConfigError, OverrideError, UsageError, read_text
 
 __all__ = [
     "Display",
@@ -377,14 +377,7 @@ def read_study_dict(path: str | Path) -> dict:
         A missing or unreadable file, or malformed TOML.
     """
     path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise ConfigError(f"{path}: study file not found") from None
-    except IsADirectoryError:
-        raise ConfigError(f"{path}: expected a TOML study file, found a folder") from None
-    except UnicodeDecodeError as e:
-        raise ConfigError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what="study file", expected="a TOML study file", error=ConfigError)
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:

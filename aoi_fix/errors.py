@@ -62,3 +62,22 @@ def where(path: object, *, row: int | None = None, column: str | None = None,
         parts.append(f"key '{key}'")
     loc = str(path)
     return f"{loc}: {', '.join(parts)}" if parts else loc
+
+
+def read_text(path, *, what: str, expected: str, error: type = InputFormatError) -> str:
+    """Read a UTF-8 text file (a byte-order mark is dropped) or raise one clear line.
+
+    ``what`` names the file in "not found" (e.g. "trial file"), ``expected``
+    says what a folder should have been (e.g. "a trial CSV file").
+    """
+    from pathlib import Path
+
+    path = Path(path)
+    try:
+        return path.read_bytes().decode("utf-8-sig")
+    except FileNotFoundError:
+        raise error(f"{path}: {what} not found") from None
+    except IsADirectoryError:
+        raise error(f"{path}: expected {expected}, found a folder") from None
+    except UnicodeDecodeError as e:
+        raise error(f"{path}: not UTF-8 text (byte {e.start})") from None

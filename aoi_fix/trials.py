@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from .config import Stimulus, Study
-from .errors import ConfigError, InputFormatError, where
+from .errors import ConfigError, InputFormatError, read_text, where
 
 __all__ = [
     "TIME_UNIT_TO_MS",
@@ -69,16 +69,7 @@ def _read_rows(path: Path, what: str) -> tuple[list[str], int, list[tuple[int, l
     Shared by the trial and AOI readers.  Line numbers count every line of
     the file from 1 (blank lines included), so they match a text editor.
     """
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise InputFormatError(f"{path}: {what} file not found") from None
-    except IsADirectoryError:
-        raise InputFormatError(f"{path}: expected a {what} CSV file, found a folder") from None
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError as e:
-        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what=f"{what} file", expected=f"a {what} CSV file")
     reader = csv.reader(io.StringIO(text, newline=""))
     header: list[str] | None = None
     header_line = 1

@@ -460,20 +460,21 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     next_ok = np.minimum.accumulate(cand[::-1])[::-1]
     next_ok = np.concatenate([next_ok, [n]])
     starts, ends = [], []
-    i = int(next_ok[0])
+    s_end_l, w_end_l, next_ok_l = s_end.tolist(), w_end.tolist(), next_ok.tolist()
+    thr = dispersion_threshold_deg
+    mx_acc, mn_acc = np.maximum.accumulate, np.minimum.accumulate
+    i = next_ok_l[0]
     while i < n:  # one iteration per fixation
-        stop = int(s_end[i])
-        j0 = int(w_end[i])
+        stop = s_end_l[i]
+        j0 = w_end_l[i]
         m = max(2 * (j0 - i), 64)
-        e = stop
         while True:
             hi = min(i + m, stop)
-            cxmax = np.maximum.accumulate(ax[i:hi])
-            cxmin = np.minimum.accumulate(ax[i:hi])
-            cymax = np.maximum.accumulate(ay[i:hi])
-            cymin = np.minimum.accumulate(ay[i:hi])
-            d = (cxmax - cxmin) + (cymax - cymin)
-            over = np.flatnonzero(d[j0 - i:] > dispersion_threshold_deg)
+            bx, by = ax[i:hi], ay[i:hi]
+            d = mx_acc(bx) - mn_acc(bx)
+            d += mx_acc(by)
+            d -= mn_acc(by)
+            over = np.flatnonzero(d[j0 - i:] > thr)
             if len(over):
                 e = j0 + int(over[0])
                 break
@@ -483,7 +484,7 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
             m *= 2
         starts.append(i)
         ends.append(e)
-        i = int(next_ok[e])
+        i = next_ok_l[e]
     out = _table(np.array(starts), np.array(ends), t, x, y, raw_valid, interval_ms)
     return out
 

@@ -64,7 +64,7 @@ import pandas as pd
 import shapely
 
 from . import keyframes as _kf
-from .errors import ConfigError, InputFormatError, where
+from .errors import ConfigError, InputFormatError, read_text, where
 from .trials import _read_rows
 
 __all__ = [
@@ -463,14 +463,7 @@ def _ring_check(ring, loc: str, what: str) -> None:
 
 
 def _read_geojson(path: Path, stimuli: Mapping, problems=None):
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except FileNotFoundError:
-        raise InputFormatError(f"{path}: AOI file not found") from None
-    except IsADirectoryError:
-        raise InputFormatError(f"{path}: expected an AOI file, found a folder") from None
-    except UnicodeDecodeError as e:
-        raise InputFormatError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    text = read_text(path, what="AOI file", expected="an AOI file")
     if not text.strip():
         raise InputFormatError(f"{path}: empty file, expected a GeoJSON FeatureCollection")
     try:

@@ -547,13 +547,9 @@ def read_physio(path: str | Path, cols: SampleColumns, display: Display) -> pd.D
     import pyarrow as pa
     import pyarrow.csv as pcsv
 
-    from .samples import tidy_samples
+    from .samples import require_samples_file, tidy_samples
 
-    path = Path(path)
-    if not path.exists():
-        raise InputFormatError(f"{path}: samples file not found")
-    if path.is_dir():
-        raise InputFormatError(f"{path}: expected a samples file, found a folder")
+    path = require_samples_file(path)
     side_path, side = _sidecar(path)
     columns = side["Columns"]
     wanted = [getattr(cols, r) for r in ("time", "x", "y", "x_left", "y_left", "x_right",

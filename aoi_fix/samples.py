@@ -372,11 +372,7 @@ def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.
     NoValidSamplesError
         No sample has a valid gaze position.
     """
-    path = Path(path)
-    if not path.exists():
-        raise InputFormatError(f"{path}: samples file not found")
-    if path.is_dir():
-        raise InputFormatError(f"{path}: expected a samples file, found a folder")
+    path = require_samples_file(path)
     if path.name.endswith("_physio.tsv.gz"):  # a BIDS recording: columns from its sidecar
         from .bids import read_physio
         return read_physio(path, cols, display)
@@ -387,6 +383,16 @@ def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.
         raise NoValidSamplesError(f"{path}: none of the {len(tidy)} samples has a valid gaze "
                                   "position (check [samples] columns, coords and validity)")
     return tidy
+
+
+def require_samples_file(path: str | Path) -> Path:
+    """The path, or one line saying the samples file is missing or is a folder."""
+    path = Path(path)
+    if not path.exists():
+        raise InputFormatError(f"{path}: samples file not found")
+    if path.is_dir():
+        raise InputFormatError(f"{path}: expected a samples file, found a folder")
+    return path
 
 
 def nominal_interval_ms(t_ms: np.ndarray, rate_hz: float = 0.0) -> float:

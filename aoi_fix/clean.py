@@ -123,7 +123,8 @@ def smooth_savgol(t_ms: np.ndarray, values: np.ndarray, segment: np.ndarray, *,
 
 
 def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms: float,
-                     interval_ms: float) -> tuple[np.ndarray, np.ndarray]:
+                     interval_ms: float, fid: np.ndarray | None = None
+                     ) -> tuple[np.ndarray, np.ndarray]:
     """Positions for AOI matching: each fixation sample averaged over a window.
 
     For a sample inside a fixation, the mean position of the fixation's
@@ -135,6 +136,9 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
     simulator: with 0.15 deg noise at 300 Hz, 100 ms brought the share of
     (trial, AOI) percentages within 3 points of the truth from 0.61 to 1.0.
 
+    ``fid`` (:func:`aoi_fix.summary.fixation_of_sample` of these fixations)
+    may be passed when the caller has it already.
+
     >>> f = pd.DataFrame({"x_px": [0., 2, 4, 9], "y_px": [0., 0, 0, 0]})
     >>> fx = pd.DataFrame({"start_row": [0], "end_row": [3]})
     >>> fixation_average(f, fx, window_ms=20, interval_ms=10)[0].tolist()
@@ -145,21 +149,34 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
     n = len(x)
     if n == 0 or len(fixations) == 0 or window_ms <= 0:
         return x, y
+    from .summary import fixation_of_sample
+
+    if fid is None:
+        fid = fixation_of_sample(n, fixations)
     st = fixations["start_row"].to_numpy(np.int64)
     en = fixations["end_row"].to_numpy(np.int64)
-    lengths = en - st
-    f = np.repeat(np.arange(len(st)), lengths)
-    i = np.repeat(st, lengths) + (np.arange(lengths.sum())
-                                  - np.repeat(np.cumsum(lengths) - lengths, lengths))
+    i = np.flatnonzero(fid >= 0)  # fixation samples, in order
+    f = fid[i]
     h = max(0, int(round(window_ms / (2.0 * interval_ms))))
-    lo = np.maximum(st[f], i - h)
-    hi = np.minimum(en[f], i + h + 1)
-    ok = np.isfinite(x) & np.isfinite(y)
-    cx = np.concatenate([[0.0], np.cumsum(np.where(ok, x, 0.0))])
-    cy = np.concatenate([[0.0], np.cumsum(np.where(ok, y, 0.0))])
-    cn = np.concatenate([[0], np.cumsum(ok)])
+    lo = i - h
+    np.maximum(lo, st[f], out=lo)
+    hi = i + (h + 1)
+    np.minimum(hi, en[f], out=hi)
+    del f
+    ok = np.isfinite(x)
+    ok &= np.isfinite(y)
+    cn = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(ok, out=cn[1:])
     cnt = cn[hi] - cn[lo]
+    del cn
     good = cnt > 0
-    x[i[good]] = (cx[hi] - cx[lo])[good] / cnt[good]
-    y[i[good]] = (cy[hi] - cy[lo])[good] / cnt[good]
+    i, lo, hi, cnt = i[good], lo[good], hi[good], cnt[good]
+    for v in (x, y):  # two coordinates
+        c = np.zeros(n + 1)
+        np.cumsum(np.where(ok, v, 0.0), out=c[1:])
+        m = c[hi]
+        m -= c[lo]
+        del c
+        m /= cnt
+        v[i] = m
     return x, y

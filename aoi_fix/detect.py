@@ -82,22 +82,13 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
             "duration_ms": pd.Series([], dtype=float), "x_px": pd.Series([], dtype=float),
             "y_px": pd.Series([], dtype=float), "start_row": pd.Series([], dtype="int64"),
             "end_row": pd.Series([], dtype="int64")})
-    use = raw_valid & np.isfinite(x) & np.isfinite(y)
-    cx = np.concatenate([[0.0], np.cumsum(np.where(use, x, 0.0))])
-    cy = np.concatenate([[0.0], np.cumsum(np.where(use, y, 0.0))])
-    cn = np.concatenate([[0], np.cumsum(use)])
-    fx = np.where(np.isfinite(x), x, 0.0)
-    fy = np.where(np.isfinite(y), y, 0.0)
-    fin = np.isfinite(x)
-    ax = np.concatenate([[0.0], np.cumsum(fx)])
-    ay = np.concatenate([[0.0], np.cumsum(fy)])
-    an = np.concatenate([[0], np.cumsum(fin)])
-    cnt = cn[ends] - cn[starts]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mx = np.where(cnt > 0, (cx[ends] - cx[starts]) / cnt,
-                      (ax[ends] - ax[starts]) / (an[ends] - an[starts]))
-        my = np.where(cnt > 0, (cy[ends] - cy[starts]) / cnt,
-                      (ay[ends] - ay[starts]) / (an[ends] - an[starts]))
+    mx, cnt = _run_means(starts, ends, x, y, raw_valid & np.isfinite(x) & np.isfinite(y))
+    lacking = cnt == 0  # no raw valid sample: mean of the finite (interpolated) ones
+    if lacking.any():
+        k = np.flatnonzero(lacking)
+        mx[k], _ = _run_means(starts[k], ends[k], x, y, np.isfinite(x) & np.isfinite(y))
+    my = mx[:, 1]
+    mx = mx[:, 0]
     onset = t[starts]
     offset = t[ends - 1] + interval_ms
     nxt = np.where(ends < n, t[np.minimum(ends, n - 1)], np.inf)
@@ -106,6 +97,27 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
         "fixation": np.arange(1, len(starts) + 1, dtype=np.int64),
         "onset_ms": onset, "offset_ms": offset, "duration_ms": offset - onset,
         "x_px": mx, "y_px": my, "start_row": starts, "end_row": ends})
+
+
+def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarray,
+               use: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean (x, y) of the ``use`` samples of each run [start, end), and their count.
+
+    One prefix sum per coordinate; NaN means for runs with no ``use`` sample.
+    """
+    n = len(x)
+    cn = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(use, out=cn[1:])
+    cnt = cn[ends] - cn[starts]
+    del cn
+    out = np.empty((len(starts), 2))
+    c = np.empty(n + 1)
+    c[0] = 0.0
+    for j, v in enumerate((x, y)):  # two coordinates
+        np.cumsum(np.where(use, v, 0.0), out=c[1:])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[:, j] = (c[ends] - c[starts]) / cnt
+    return out, cnt
 
 
 def _runs(mask: np.ndarray, segment: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -154,47 +166,126 @@ def _prepared(samples, display, window_ms, interval_ms, smoothing, smoothing_win
     return t, x, y, seg, h
 
 
+def _segment_runs(seg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First row and one-past-last row of every segment (runs of one id >= 0)."""
+    n = len(seg)
+    if n == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    cut = np.flatnonzero(seg[1:] != seg[:-1]) + 1
+    starts = np.concatenate([[0], cut]).astype(np.int64)
+    ends = np.concatenate([cut, [n]]).astype(np.int64)
+    keep = seg[starts] >= 0
+    return starts[keep], ends[keep]
+
+
+def _edge_windows(seg: np.ndarray, h: int):
+    """Rows whose +-h window leaves their segment, with the clamped window ends.
+
+    Returns ``rows, lo, hi`` (``lo <= rows <= hi``, all inside the segment).
+    Only the first and last h rows of each segment qualify, so this costs
+    O(segments x h), not O(samples).
+    """
+    s0, s1 = _segment_runs(seg)
+    if len(s0) == 0:
+        e = np.zeros(0, np.int64)
+        return e, e, e
+    k = np.minimum(h, s1 - s0)
+    head = np.repeat(s0, k) + (np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k))
+    tail = np.repeat(s1 - k, k) + (np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k))
+    which = np.concatenate([np.repeat(np.arange(len(s0)), k)] * 2)
+    rows, first = np.unique(np.concatenate([head, tail]), return_index=True)
+    which = which[first]
+    lo = np.maximum(rows - h, s0[which])
+    hi = np.minimum(rows + h, s1[which] - 1)
+    return rows, lo, hi
+
+
+def _unit_rate(ux, uy, uz, a, b, dt_ms):
+    """Angular rate (deg/s) between unit vectors at rows ``a`` and ``b`` over ``dt_ms``."""
+    c2 = ux[b] - ux[a]
+    c2 *= c2
+    d = uy[b] - uy[a]
+    d *= d
+    c2 += d
+    d = uz[b] - uz[a]
+    d *= d
+    c2 += d
+    return _chord_rate(c2, dt_ms)
+
+
+def _chord_rate(c2, dt_ms):
+    """deg/s from squared chords between unit lines of sight: 2 asin(chord / 2) / dt."""
+    np.sqrt(c2, out=c2)
+    c2 *= 0.5
+    np.minimum(c2, 1.0, out=c2)
+    np.arcsin(c2, out=c2)
+    c2 *= 2000.0 * 180.0 / np.pi
+    c2 /= dt_ms
+    return c2
+
+
+def _unit_vectors(x, y, display):
+    """Unit lines of sight (eye at ``distance_mm`` before the display centre)."""
+    x_mm, y_mm = geometry.px_to_mm(x, y, display)
+    d = float(display.distance_mm)
+    inv = x_mm * x_mm
+    inv += y_mm * y_mm
+    inv += d * d
+    np.sqrt(inv, out=inv)
+    np.divide(1.0, inv, out=inv)
+    x_mm *= inv
+    y_mm *= inv
+    inv *= d
+    return x_mm, y_mm, inv
+
+
 def _speed(t, x, y, seg, h, display) -> np.ndarray:
     """Windowed angular speed (deg/s) of every sample; NaN for lost samples.
 
-    Lines of sight are unit vectors computed once per sample; the angle
-    between two of them is ``2 asin(chord / 2)``, exact and stable for small
-    angles.
-    Interior samples use shifted slices; only samples whose window reaches a
-    segment's edge are clamped, with gathers.
+    Lines of sight are unit vectors; the angle between two of them is
+    ``2 asin(chord / 2)``, exact and stable for small angles.  Interior
+    samples are computed in blocks (with an h-sample halo) on a few threads;
+    only samples whose window reaches a segment's edge are clamped, with
+    gathers.
     """
+    from ._chunks import map_blocks
+
     n = len(t)
     speed = np.full(n, np.nan)
     if n < 2:
         return speed
-    x_mm, y_mm = geometry.px_to_mm(x, y, display)
-    d = float(display.distance_mm)
-    inv = 1.0 / np.sqrt(x_mm * x_mm + y_mm * y_mm + d * d)
-    ux, uy, uz = x_mm * inv, y_mm * inv, d * inv
-    del x_mm, y_mm, inv
 
-    def angle_rate(c2, dt_ms):
-        half = np.sqrt(c2)
-        half *= 0.5
-        np.minimum(half, 1.0, out=half)
-        return np.degrees(2.0 * np.arcsin(half)) * (1000.0 / dt_ms)
+    def block(a, b):
+        i0, i1 = max(a, h), min(b, n - h)  # rows whose full window exists
+        if i1 <= i0:
+            return
+        lo, hi = i0 - h, i1 + h
+        ux, uy, uz = _unit_vectors(x[lo:hi], y[lo:hi], display)
+        m = i1 - i0
+        c2 = ux[2 * h:2 * h + m] - ux[:m]
+        c2 *= c2
+        d = uy[2 * h:2 * h + m] - uy[:m]
+        d *= d
+        c2 += d
+        d = uz[2 * h:2 * h + m] - uz[:m]
+        d *= d
+        c2 += d
+        speed[i0:i1] = _chord_rate(c2, t[i0 + h:i1 + h] - t[i0 - h:i1 - h])
 
     with np.errstate(invalid="ignore", divide="ignore"):
-        if n > 2 * h:
-            c2 = (ux[2 * h:] - ux[:-2 * h]) ** 2
-            c2 += (uy[2 * h:] - uy[:-2 * h]) ** 2
-            c2 += (uz[2 * h:] - uz[:-2 * h]) ** 2
-            speed[h:n - h] = angle_rate(c2, t[2 * h:] - t[:-2 * h])
-            del c2
+        map_blocks(block, n)
         # samples whose window leaves their segment (or the recording): clamp
-        s_start, s_end = _segment_bounds(seg)
-        idx = np.arange(n)
-        edge = np.flatnonzero((seg >= 0) & ((idx - h < s_start) | (idx + h > s_end - 1)))
-        lo = np.maximum(edge - h, s_start[edge])
-        hi = np.minimum(edge + h, s_end[edge] - 1)
-        c2 = (ux[hi] - ux[lo]) ** 2 + (uy[hi] - uy[lo]) ** 2 + (uz[hi] - uz[lo]) ** 2
-        speed[edge] = angle_rate(c2, t[hi] - t[lo])
-        speed[edge[hi == lo]] = np.nan
+        rows, lo, hi = _edge_windows(seg, h)
+        if len(rows):
+            ux, uy, uz = _unit_vectors(x, y, display) if len(rows) > n // 4 else (None,) * 3
+            if ux is None:
+                both = np.concatenate([lo, hi])
+                vx, vy, vz = _unit_vectors(x[both], y[both], display)
+                a, b = np.arange(len(lo)), np.arange(len(lo), 2 * len(lo))
+                speed[rows] = _unit_rate(vx, vy, vz, a, b, t[hi] - t[lo])
+            else:
+                speed[rows] = _unit_rate(ux, uy, uz, lo, hi, t[hi] - t[lo])
+            speed[rows[hi == lo]] = np.nan
     speed[seg < 0] = np.nan
     return speed
 

@@ -214,13 +214,20 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     else:
         trial_idx = assign_trials(t, trials)
         frame = frame_index(t, trial_idx, trials, study.stimuli)
-    xv, yv = screen_to_video(x_px, y_px, trial_idx, trials, study.stimuli)
-    onv = on_video(x_px, y_px, trial_idx, trials)
     code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int64)
-    has_pos = np.isfinite(x_px) & np.isfinite(y_px) & (trial_idx >= 0)
+    has_pos = trial_idx >= 0
     if rows is not None:
         has_pos &= rows
-    code[has_pos & ~onv] = CODE_OFF_VIDEO
+    has_pos &= np.isfinite(x_px)
+    has_pos &= np.isfinite(y_px)
+    cand = np.flatnonzero(has_pos)  # only these samples are placed and tested
+    del has_pos
+    x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
+    onv = on_video(x_c, y_c, tr_c, trials)
+    code[cand[~onv]] = CODE_OFF_VIDEO
+    cand, x_c, y_c, tr_c = cand[onv], x_c[onv], y_c[onv], tr_c[onv]
+    xv, yv = screen_to_video(x_c, y_c, tr_c, trials, study.stimuli)
+    del x_c, y_c
     margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
     # trials showing the same video at the same scale share one vectorised call
     stimuli_with_aois = set(session.aois.stimuli())
@@ -235,18 +242,21 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
         key = (stim, float(margin_screen_px[0]) * scale)
         group_of_trial[k] = groups.setdefault(key, len(groups))
-    rows_all = np.flatnonzero(has_pos & onv)
-    group_of_row = group_of_trial[trial_idx[rows_all]]
-    order = np.argsort(group_of_row, kind="stable")
+    group_of_row = group_of_trial[tr_c]
+    if len(groups) == 1:
+        order = np.arange(len(cand))
+    else:
+        order = np.argsort(group_of_row, kind="stable")
     bounds = np.searchsorted(group_of_row[order], np.arange(len(groups) + 1))
     for (stim, margin_vid), g in groups.items():  # a loop over (video, scale) groups
-        rows = rows_all[order[bounds[g]:bounds[g + 1]]]
-        if len(rows) == 0:
+        sel = order[bounds[g]:bounds[g + 1]]
+        if len(sel) == 0:
             continue
+        rows = cand[sel]
         if stim not in stimuli_with_aois:
             code[rows] = CODE_NONE
             continue
-        code[rows] = match_points(session.aois, stim, frame[rows], xv[rows], yv[rows],
+        code[rows] = match_points(session.aois, stim, frame[rows], xv[sel], yv[sel],
                                   margin_px=margin_vid, priority=study.aois.priority)
     return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)
 
@@ -368,16 +378,17 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         from .summary import fixation_of_sample
 
         t = session.samples["t_ms"].to_numpy(float)
+        fid = fixation_of_sample(len(t), fixations)
         if window > 0:
             xm, ym = fixation_average(filled, fixations, window_ms=window,
-                                      interval_ms=session.interval_ms)
+                                      interval_ms=session.interval_ms, fid=fid)
         else:
             xm, ym = _full_interpolation(session.samples)
         if corrected:
             from .quality import correct_positions
             xm, ym = correct_positions(xm, ym, t, model, study.display)
-        in_fix = fixation_of_sample(len(t), fixations) >= 0
-        matched = match_session(session, x_px=xm, y_px=ym, rows=in_fix, base=matched)
+        matched = match_session(session, x_px=xm, y_px=ym, rows=fid >= 0, base=matched)
+        del xm, ym
     if corrected:
         fixations = fixations.copy()
         mid = (fixations["onset_ms"].to_numpy(float) + fixations["offset_ms"].to_numpy(float)) / 2

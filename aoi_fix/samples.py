@@ -144,7 +144,7 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
         if missing_cols:
             raise InputFormatError(f"{path}: column '{missing_cols[0]}' is missing; "
                                    f"found columns: {', '.join(schema.names)}")
-        return pq.read_table(path, columns=names).to_pandas(split_blocks=True, self_destruct=True)
+        return _owned_columns(pq.read_table(path, columns=names))
 
     import pyarrow.csv as pcsv
 
@@ -187,7 +187,36 @@ def _read_table(path: Path, cols: SampleColumns) -> pd.DataFrame:
             or pa.types.is_null(tcol.type)):
         raise InputFormatError(_diagnose(path, delimiter, cols.decimal, header, numeric,
                                          missing))
-    return table.to_pandas(split_blocks=True, self_destruct=True)
+    return _owned_columns(table)
+
+
+def _owned_columns(table) -> pd.DataFrame:
+    """The table's columns as numpy-backed columns that this process owns.
+
+    One column at a time is copied out of Arrow (nulls become NaN in number
+    columns) and dropped from the table, so the peak is the table plus one
+    column, and :func:`tidy_samples` may then work on the arrays in place
+    (``owned=True``).  Text columns stay pandas strings.
+    """
+    import pyarrow as pa
+
+    out = {}
+    for name in list(table.column_names):
+        col = table.column(name)
+        table = table.drop_columns([name])
+        if pa.types.is_floating(col.type) or pa.types.is_integer(col.type) \
+                or pa.types.is_boolean(col.type):
+            if col.null_count and not pa.types.is_floating(col.type):
+                col = col.cast(pa.float64())
+            arr = col.to_numpy()
+            if not arr.flags.writeable or not arr.flags.owndata:
+                arr = arr.copy()
+            out[name] = pd.Series(arr, copy=False)
+        else:
+            out[name] = col.to_pandas()
+        del col
+        pa.default_memory_pool().release_unused()  # hand the column's memory back now
+    return pd.DataFrame(out, copy=False)
 
 
 def _line_scanner(path: Path):
@@ -216,9 +245,12 @@ def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str,
                 line_of=lambda i: i + 2) -> np.ndarray:
     if pd.api.types.is_bool_dtype(values):
         return values.to_numpy(dtype=bool, na_value=False)
+    if pd.api.types.is_integer_dtype(values) and not cols.valid_codes \
+            and not values.hasnans:
+        return values.to_numpy() != 0
     if pd.api.types.is_numeric_dtype(values) and not cols.valid_codes:
         v = values.to_numpy(dtype=float, na_value=np.nan)
-        return np.nan_to_num(v, nan=0.0) != 0
+        return (v != 0) & ~np.isnan(v)
     s = values.astype("string").str.strip()
     if cols.valid_codes:
         ok = s.isin(list(cols.valid_codes)).to_numpy(dtype=bool, na_value=False)
@@ -238,7 +270,7 @@ def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str,
 
 
 def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
-                 source: str = "samples", line_of=None) -> pd.DataFrame:
+                 source: str = "samples", line_of=None, owned: bool = False) -> pd.DataFrame:
     """Turn a raw table (columns named as in ``[samples]``) into the tidy frame.
 
     Parameters
@@ -254,6 +286,9 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     line_of : callable, optional
         Maps a 0-based row to its line in the file for error messages
         (default: row + 2, a header and no blank lines).
+    owned : bool
+        The caller gives up ``raw``: its float columns may be reused (changed
+        in place) as output columns instead of copied.  Default False.
 
     Returns
     -------
@@ -286,7 +321,13 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
         raise InputFormatError(f"{source}: line {line_of(i)}, column '{cols.time}': found "
                                f"{_shown(t_raw.iloc[i])}, expected a finite time in "
                                f"{cols.time_unit}")
-    t_ms = t_num.to_numpy(dtype=float) * TIME_SCALE_MS[cols.time_unit]
+    scale = TIME_SCALE_MS[cols.time_unit]
+    if owned and t_num.dtype == np.float64 and t_num.to_numpy().flags.writeable:
+        t_ms = t_num.to_numpy()
+        if scale != 1.0:
+            t_ms *= scale
+    else:
+        t_ms = t_num.to_numpy(dtype=float) * scale
     if len(t_ms) > 1:
         step = np.diff(t_ms)
         back = step <= 0
@@ -301,12 +342,17 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     sx, sy = (display.width_px, display.height_px) if cols.coords == "norm" else (1.0, 1.0)
     lim_x = cols.max_offscreen_frac * display.width_px
     lim_y = cols.max_offscreen_frac * display.height_px
+    taken = [t_ms]  # arrays already used for an output column
 
     def number(name: str, scale: float) -> np.ndarray:
         col = raw[name]
         if not pd.api.types.is_float_dtype(col):
             col = pd.to_numeric(col, errors="coerce")
-        out = np.array(col.to_numpy(dtype=float, na_value=np.nan), dtype=float)  # own copy
+        out = col.to_numpy(dtype=float, na_value=np.nan)
+        if not (owned and out.dtype == np.float64 and out.flags.writeable
+                and not any(np.shares_memory(out, a) for a in taken)):
+            out = np.array(out, dtype=float)  # own copy
+        taken.append(out)
         if scale != 1.0:
             out *= scale
         return out
@@ -319,8 +365,9 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
             ok &= (y >= -lim_y) & (y <= display.height_px + lim_y)
         if vn:
             ok &= _valid_from(raw[vn], cols, Path(source), vn, line_of)
-        x[~ok] = np.nan
-        y[~ok] = np.nan
+        bad = ~ok
+        x[bad] = np.nan
+        y[bad] = np.nan
         return x, y, ok
 
     out = {"t_ms": t_ms}
@@ -378,7 +425,8 @@ def read_samples(path: str | Path, cols: SampleColumns, display: Display) -> pd.
         return read_physio(path, cols, display)
     raw = _read_table(path, cols)
     line_of = (lambda i: i + 2) if path.suffix == ".parquet" else _line_scanner(path)
-    tidy = tidy_samples(raw, cols, display, source=str(path), line_of=line_of)
+    tidy = tidy_samples(raw, cols, display, source=str(path), line_of=line_of, owned=True)
+    del raw
     if not tidy["valid"].any():
         raise NoValidSamplesError(f"{path}: none of the {len(tidy)} samples has a valid gaze "
                                   "position (check [samples] columns, coords and validity)")

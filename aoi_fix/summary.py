@@ -34,16 +34,30 @@ CODE_NOT_IN_TRIAL = -3
 
 
 def fixation_of_sample(n: int, fixations: pd.DataFrame) -> np.ndarray:
-    """Row number in ``fixations`` of each sample's fixation, -1 outside fixations."""
+    """Row number in ``fixations`` of each sample's fixation, -1 outside fixations.
+
+    The fixations must be in time order and must not overlap (every detector's
+    output is).  Streaming index arithmetic, no per-fixation expansion.
+
+    >>> fx = pd.DataFrame({"start_row": [1, 4], "end_row": [3, 6]})
+    >>> fixation_of_sample(7, fx).tolist()
+    [-1, 0, 0, -1, 1, 1, -1]
+    """
     fid = np.full(n, -1, dtype=np.int64)
-    if len(fixations) == 0:
+    if len(fixations) == 0 or n == 0:
         return fid
     starts = fixations["start_row"].to_numpy(np.int64)
     ends = fixations["end_row"].to_numpy(np.int64)
-    lengths = ends - starts
-    rows = np.repeat(np.arange(len(starts)), lengths)
-    pos = np.arange(lengths.sum()) - np.repeat(np.cumsum(lengths) - lengths, lengths)
-    fid[np.repeat(starts, lengths) + pos] = rows
+    keep = ends > starts
+    rows = np.flatnonzero(keep)
+    starts, ends = starts[keep], ends[keep]
+    mark = np.zeros(n, dtype=np.int64)
+    mark[starts] = 1
+    k = np.cumsum(mark, out=mark)  # fixations started at or before each sample
+    k -= 1
+    last = ends[np.maximum(k, 0)]
+    inside = (k >= 0) & (np.arange(n) < last)
+    fid[inside] = rows[k[inside]]
     return fid
 
 

@@ -1,0 +1,82 @@
+"""Running element-wise work over a long recording in blocks, on a few threads.
+
+Why blocks: a chain of numpy operations over a whole 4-million-sample column
+makes a fresh 32 MB temporary per step; memory that size comes straight from
+the operating system and is given back after each step, so every step pays
+for page faults and the data never stays in cache.  Blocks of ~128k samples
+keep the temporaries small (reused by the allocator, resident in cache), and
+the peak memory of a stage is its outputs plus a few blocks.
+
+Why threads: numpy ufuncs and gathers and shapely's vectorised predicates
+release the GIL, so independent blocks run on all cores.  The number of
+threads is ``AOI_FIX_THREADS`` when set (``1`` turns threading off, which
+``sweep -j`` and ``batch -j`` workers do so that processes do not compete),
+else the number of CPUs this process may use, at most 4.
+
+Results never depend on the block size or the number of threads: each block
+writes its own slice of a preallocated output, and reductions are done by
+the caller over the blocks in order.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ThreadPoolExecutor
+from typing import Callable, TypeVar
+
+import numpy as np
+
+R = TypeVar("R")
+
+#: Samples per block (a few MB per float64 temporary).
+BLOCK = 1 << 17
+
+
+def threads() -> int:
+    """Worker threads for block work (``AOI_FIX_THREADS`` or the usable CPUs, at most 4)."""
+    env = os.environ.get("AOI_FIX_THREADS", "").strip()
+    if env:
+        try:
+            return max(1, int(env))
+        except ValueError:
+            return 1
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # pragma: no cover - not Linux
+        n = os.cpu_count() or 1
+    return max(1, min(n, 4))
+
+
+def blocks(n: int, size: int = BLOCK) -> list[tuple[int, int]]:
+    """Consecutive ``(start, stop)`` ranges covering ``0 .. n``.
+
+    >>> blocks(5, 2)
+    [(0, 2), (2, 4), (4, 5)]
+    """
+    return [(a, min(a + size, n)) for a in range(0, n, size)]
+
+
+def map_blocks(func: Callable[[int, int], R], n: int, *, size: int = BLOCK) -> list[R]:
+    """``[func(a, b) for (a, b) in blocks(n, size)]``, on :func:`threads` threads.
+
+    ``func`` must only write its own ``[a, b)`` slice of shared outputs.
+    Results come back in block order.
+
+    >>> out = np.zeros(10)
+    >>> def fill(a, b):
+    ...     out[a:b] = np.arange(a, b) * 2.0
+    ...     return b - a
+    >>> map_blocks(fill, 10, size=3), float(out[-1])
+    ([3, 3, 3, 1], 18.0)
+    """
+    parts = blocks(n, size)
+    k = min(threads(), len(parts))
+    if k <= 1:
+        return [func(a, b) for a, b in parts]
+    with ThreadPoolExecutor(max_workers=k) as ex:
+        return list(ex.map(lambda ab: func(*ab), parts))
+
+
+def split(idx: np.ndarray, size: int = BLOCK) -> list[np.ndarray]:
+    """``idx`` cut into consecutive pieces of at most ``size`` (views)."""
+    return [idx[a:b] for a, b in blocks(len(idx), size)]

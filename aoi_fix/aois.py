@@ -141,6 +141,11 @@ class _Track:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             b = shapely.bounds(geoms)  # NaN for the None slot
+        # one query per polygon builds GEOS's lazily made point locators now,
+        # so that threads testing points later only read shared state
+        real = np.flatnonzero(np.isfinite(b[:, 0]))
+        if len(real):
+            shapely.intersects_xy(geoms[real], b[real, 0], b[real, 1])
         out = (geoms, *(np.ascontiguousarray(b[:, k]) for k in range(4)))
         self._buffered[margin_px] = out
         return out
@@ -676,6 +681,16 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
         res[sel[hit]] = rank
     result[idx] = res
     return result.reshape(shape)
+
+
+def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0) -> None:
+    """Grow, prepare and index every AOI of a stimulus for ``margin_px`` now.
+
+    :func:`match_points` does this on first use; calling it first makes the
+    shared geometry read-only for threads that then test points in parallel.
+    """
+    for name in aois.names(stimulus):
+        aois._track(stimulus, name).buffered(float(margin_px))
 
 
 def stimulus_check(trials: pd.DataFrame, aois: AoiTable, trials_path, aois_path) -> None:

@@ -184,7 +184,11 @@ def _full_interpolation(samples: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
 
 def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
                   base: Matched | None = None) -> Matched:
-    """Trial, video frame and AOI code of every sample (one vectorised pass per trial).
+    """Trial, video frame and AOI code of every sample.
+
+    Samples are placed and hit-tested in blocks (a few threads, see
+    :mod:`aoi_fix._chunks`); within a block, one vectorised call per
+    (video, scale) group.
 
     Codes: >= 0 index into the trial's AOI names (priority order), -1 on the
     video outside every AOI, -2 off the video, -3 outside every trial, no
@@ -201,9 +205,11 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         Reuse its trial and frame index (they do not depend on positions).
     """
     from . import geometry
-    from .aois import match_points
+    from ._chunks import map_blocks
+    from .aois import match_points, prepare_tracks
     from .summary import CODE_NONE, CODE_NOT_IN_TRIAL, CODE_OFF_VIDEO
-    from .trials import assign_trials, frame_index, on_video, screen_to_video
+    from .trials import (assign_trials, frame_index, on_video, placement_sorted,
+                         screen_to_video)
 
     study, trials = session.study, session.trials
     t = session.samples["t_ms"].to_numpy(float)
@@ -211,23 +217,12 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         x_px, y_px = _full_interpolation(session.samples)
     if base is not None:
         trial_idx, frame = base.trial_idx, base.frame
+    elif len(t) < 2 or bool(np.all(t[1:] > t[:-1])):
+        trial_idx, frame = placement_sorted(t, trials, study.stimuli)
     else:
         trial_idx = assign_trials(t, trials)
         frame = frame_index(t, trial_idx, trials, study.stimuli)
     code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int64)
-    has_pos = trial_idx >= 0
-    if rows is not None:
-        has_pos &= rows
-    has_pos &= np.isfinite(x_px)
-    has_pos &= np.isfinite(y_px)
-    cand = np.flatnonzero(has_pos)  # only these samples are placed and tested
-    del has_pos
-    x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
-    onv = on_video(x_c, y_c, tr_c, trials)
-    code[cand[~onv]] = CODE_OFF_VIDEO
-    cand, x_c, y_c, tr_c = cand[onv], x_c[onv], y_c[onv], tr_c[onv]
-    xv, yv = screen_to_video(x_c, y_c, tr_c, trials, study.stimuli)
-    del x_c, y_c
     margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
     # trials showing the same video at the same scale share one vectorised call
     stimuli_with_aois = set(session.aois.stimuli())
@@ -242,22 +237,38 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
         key = (stim, float(margin_screen_px[0]) * scale)
         group_of_trial[k] = groups.setdefault(key, len(groups))
-    group_of_row = group_of_trial[tr_c]
-    if len(groups) == 1:
-        order = np.arange(len(cand))
-    else:
-        order = np.argsort(group_of_row, kind="stable")
-    bounds = np.searchsorted(group_of_row[order], np.arange(len(groups) + 1))
-    for (stim, margin_vid), g in groups.items():  # a loop over (video, scale) groups
-        sel = order[bounds[g]:bounds[g + 1]]
-        if len(sel) == 0:
-            continue
-        rows = cand[sel]
-        if stim not in stimuli_with_aois:
-            code[rows] = CODE_NONE
-            continue
-        code[rows] = match_points(session.aois, stim, frame[rows], xv[sel], yv[sel],
-                                  margin_px=margin_vid, priority=study.aois.priority)
+    group_list = list(groups)
+    for stim, margin_vid in group_list:  # geometry ready before threads share it
+        if stim in stimuli_with_aois:
+            prepare_tracks(session.aois, stim, margin_px=margin_vid)
+
+    def block(a, b):  # samples a..b-1: place on the video and hit-test
+        has = trial_idx[a:b] >= 0
+        if rows is not None:
+            has &= rows[a:b]
+        has &= np.isfinite(x_px[a:b])
+        has &= np.isfinite(y_px[a:b])
+        cand = np.flatnonzero(has)
+        if len(cand) == 0:
+            return
+        cand += a
+        x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
+        onv = on_video(x_c, y_c, tr_c, trials)
+        code[cand[~onv]] = CODE_OFF_VIDEO
+        cand, x_c, y_c, tr_c = cand[onv], x_c[onv], y_c[onv], tr_c[onv]
+        xv, yv = screen_to_video(x_c, y_c, tr_c, trials, study.stimuli)
+        g_of = group_of_trial[tr_c]
+        for g in np.unique(g_of):  # a loop over the (video, scale) groups in this block
+            sel = np.flatnonzero(g_of == g) if len(group_list) > 1 else slice(None)
+            stim, margin_vid = group_list[g]
+            r = cand[sel]
+            if stim not in stimuli_with_aois:
+                code[r] = CODE_NONE
+                continue
+            code[r] = match_points(session.aois, stim, frame[r], xv[sel], yv[sel],
+                                   margin_px=margin_vid, priority=study.aois.priority)
+
+    map_blocks(block, len(t))
     return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)
 
 
@@ -266,15 +277,20 @@ def _boundaries(trials: pd.DataFrame) -> np.ndarray:
 
 
 def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
-              filled: pd.DataFrame) -> dict[str, pd.DataFrame]:
-    """Per-trial tables from detected fixations and the per-sample placement."""
+              filled: pd.DataFrame, fid: np.ndarray | None = None) -> dict[str, pd.DataFrame]:
+    """Per-trial tables from detected fixations and the per-sample placement.
+
+    ``fid``: :func:`aoi_fix.summary.fixation_of_sample` of ``fixations``, when known.
+    """
     from .summary import (aoi_summary, fixation_of_sample, fixation_parts,
                           sample_weights, trial_quality, carry_weights)
 
     t = session.samples["t_ms"].to_numpy(float)
-    fid = fixation_of_sample(len(t), fixations)
-    w_own = sample_weights(t, fid, fixations, _boundaries(session.trials))
-    w = w_own + carry_weights(t, fid, w_own)
+    if fid is None:
+        fid = fixation_of_sample(len(t), fixations)
+    bounds = _boundaries(session.trials)
+    w_own = sample_weights(t, fid, fixations, bounds)
+    w = w_own + carry_weights(t, fid, w_own, bounds)
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes,
                            w_own=w_own)
@@ -319,13 +335,11 @@ def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
     in_fix = tables["_fid"] >= 0
     parts = tables["_parts"]
     n_tr = len(session.trials)
-    ti = matched.trial_idx[in_tr]
+    from .summary import per_trial_sums
 
-    def count(mask):
-        return np.bincount(ti, weights=mask[in_tr].astype(float), minlength=n_tr).astype(int)
-
-    n_all = np.bincount(ti, minlength=n_tr)
-    n_valid, n_fill, n_lost, n_fix = count(valid), count(fill), count(lost), count(in_fix)
+    n_all, n_valid, n_fill, n_lost, n_fix = (
+        a.astype(int) for a in per_trial_sums(matched.trial_idx, n_tr, None, valid, fill,
+                                              lost, in_fix))
     per_trial = [{"trial": str(session.trials["trial"].iat[k]), "samples": int(n_all[k]),
                   "valid": int(n_valid[k]), "gap_filled": int(n_fill[k]),
                   "lost": int(n_lost[k]), "in_fixations": int(n_fix[k])}
@@ -373,6 +387,7 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         model = drift_model(check_table)
     corrected = bool(study.quality.correct_offset and model is not None)
     window = study.aois.position_window_ms
+    fid = None
     if corrected or window > 0 or matched is None:
         from .clean import fixation_average
         from .summary import fixation_of_sample
@@ -395,7 +410,7 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         fixations["x_px"], fixations["y_px"] = correct_positions(
             fixations["x_px"].to_numpy(float), fixations["y_px"].to_numpy(float), mid, model,
             study.display)
-    tables = summarise(session, matched, fixations, filled)
+    tables = summarise(session, matched, fixations, filled, fid=fid)
     from .quality import trial_drift
     drift = trial_drift(session.trials, check_table, display=study.display,
                         max_offset_deg=study.quality.max_offset_deg)

@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 __all__ = ["NONE_LABEL", "OFF_VIDEO_LABEL", "sample_weights", "carry_weights",
-           "fixation_parts", "aoi_summary", "trial_quality"]
+           "fixation_parts", "aoi_summary", "trial_quality", "per_trial_sums"]
 
 NONE_LABEL = "(none)"
 OFF_VIDEO_LABEL = "(off-video)"
@@ -37,65 +37,104 @@ def fixation_of_sample(n: int, fixations: pd.DataFrame) -> np.ndarray:
     """Row number in ``fixations`` of each sample's fixation, -1 outside fixations.
 
     The fixations must be in time order and must not overlap (every detector's
-    output is).  Streaming index arithmetic, no per-fixation expansion.
+    output is).  Two prefix sums over start/end marks, no per-fixation expansion.
 
-    >>> fx = pd.DataFrame({"start_row": [1, 4], "end_row": [3, 6]})
+    >>> fx = pd.DataFrame({"start_row": [1, 4, 6], "end_row": [3, 6, 6]})
     >>> fixation_of_sample(7, fx).tolist()
     [-1, 0, 0, -1, 1, 1, -1]
     """
-    fid = np.full(n, -1, dtype=np.int64)
     if len(fixations) == 0 or n == 0:
-        return fid
+        return np.full(n, -1, dtype=np.int64)
     starts = fixations["start_row"].to_numpy(np.int64)
     ends = fixations["end_row"].to_numpy(np.int64)
     keep = ends > starts
     rows = np.flatnonzero(keep)
     starts, ends = starts[keep], ends[keep]
-    mark = np.zeros(n, dtype=np.int64)
+    mark = np.zeros(n + 1, dtype=np.int32)
+    mark[starts] += 1
+    mark[ends] -= 1
+    inside = np.cumsum(mark[:n], dtype=np.int32) > 0
+    mark[:] = 0
     mark[starts] = 1
-    k = np.cumsum(mark, out=mark)  # fixations started at or before each sample
-    k -= 1
-    last = ends[np.maximum(k, 0)]
-    inside = (k >= 0) & (np.arange(n) < last)
-    fid[inside] = rows[k[inside]]
+    fid = np.cumsum(mark[:n], dtype=np.int64)  # fixations started so far
+    fid -= 1
+    fid[~inside] = -1
+    if len(rows) < len(keep):  # empty fixations were skipped: back to table rows
+        got = fid >= 0
+        fid[got] = rows[fid[got]]
     return fid
+
+
+def _boundary_rows(t_ms: np.ndarray, boundaries_ms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """For each boundary: the last sample before it (-1 when none), and the boundary."""
+    b = np.unique(np.asarray(boundaries_ms, float))
+    b = b[np.isfinite(b)]
+    return np.searchsorted(t_ms, b, side="left") - 1, b
 
 
 def sample_weights(t_ms: np.ndarray, fid: np.ndarray, fixations: pd.DataFrame,
                    boundaries_ms: np.ndarray) -> np.ndarray:
-    """Time (ms) each fixation sample stands for, cut at trial boundaries; 0 elsewhere."""
+    """Time (ms) each fixation sample stands for, cut at trial boundaries; 0 elsewhere.
+
+    ``t_ms`` must increase.  A fixation sample stands for the time to the
+    next sample; its fixation's last sample for ``offset_ms - t``.  A
+    boundary can only cut the last sample before it (every other sample's
+    time ends at the next sample, before the boundary), so the cut is one
+    binary search per boundary.
+
+    >>> t = np.array([0.0, 10, 20, 30])
+    >>> fx = pd.DataFrame({"offset_ms": [40.0], "start_row": [0], "end_row": [4]})
+    >>> sample_weights(t, fixation_of_sample(4, fx), fx, np.array([15.0])).tolist()
+    [10.0, 5.0, 10.0, 10.0]
+    """
     n = len(t_ms)
     w = np.zeros(n)
     if n == 0 or len(fixations) == 0:
         return w
-    nxt = np.append(t_ms[1:], np.inf)
-    is_fix = fid >= 0
-    same_next = np.append(fid[1:] == fid[:-1], False) & is_fix
-    offset = fixations["offset_ms"].to_numpy(float)
-    w = np.where(same_next, nxt - t_ms, 0.0)
-    last = is_fix & ~same_next
-    w[last] = offset[fid[last]] - t_ms[last]
+    np.subtract(t_ms[1:], t_ms[:-1], out=w[:-1])
+    w *= fid >= 0
+    starts = fixations["start_row"].to_numpy(np.int64)
+    ends = fixations["end_row"].to_numpy(np.int64)
+    nonempty = ends > starts
+    last = ends[nonempty] - 1
+    w[last] = fixations["offset_ms"].to_numpy(float)[nonempty] - t_ms[last]
     if len(boundaries_ms):
-        b = np.sort(np.asarray(boundaries_ms, float))
-        k = np.searchsorted(b, t_ms, side="right")
-        nb = np.where(k < len(b), b[np.minimum(k, len(b) - 1)], np.inf)
-        w = np.minimum(w, nb - t_ms)
-    w[~is_fix] = 0.0
-    return np.maximum(w, 0.0)
+        j, b = _boundary_rows(t_ms, boundaries_ms)
+        ok = j >= 0
+        j, b = j[ok], b[ok]
+        np.minimum.at(w, j, b - t_ms[j])
+        touched = np.concatenate([last, j])
+    else:
+        touched = last
+    w[touched] = np.maximum(w[touched], 0.0)
+    w[touched[fid[touched] < 0]] = 0.0
+    return w
 
 
-def carry_weights(t_ms: np.ndarray, fid: np.ndarray, w_own: np.ndarray) -> np.ndarray:
+def carry_weights(t_ms: np.ndarray, fid: np.ndarray, w_own: np.ndarray,
+                  boundaries_ms: np.ndarray | None = None) -> np.ndarray:
     """Time a sample lost to a trial boundary, given to the next sample of its fixation.
 
     ``w_own`` from :func:`sample_weights` stops at a trial boundary; the rest of
     that interval (boundary to next sample) is carried by the next sample of the
     same fixation, on the other side of the boundary, so a fixation in progress
     when a trial starts counts for the trial from its first millisecond.  Use
-    ``w_own + carry`` as the time weights.
+    ``w_own + carry`` as the time weights.  With ``boundaries_ms`` (those given
+    to :func:`sample_weights`) only the sample after each boundary is looked
+    at; without, every sample (same result for ``w_own`` from
+    :func:`sample_weights`).
     """
     n = len(t_ms)
     carry = np.zeros(n)
     if n < 2:
+        return carry
+    if boundaries_ms is not None:
+        i, _ = _boundary_rows(t_ms, boundaries_ms)
+        i = np.unique(i[(i >= 0) & (i < n - 1)])
+        j = i + 1
+        cont = (fid[j] == fid[i]) & (fid[j] >= 0)
+        i, j = i[cont], j[cont]
+        carry[j] = np.maximum((t_ms[j] - t_ms[i]) - w_own[i], 0.0)
         return carry
     cont = (fid[1:] == fid[:-1]) & (fid[1:] >= 0)
     carry[1:] = np.where(cont, np.maximum(np.diff(t_ms) - w_own[:-1], 0.0), 0.0)
@@ -111,44 +150,59 @@ def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
     outside trials), ``onset_ms, offset_ms, duration_ms, x_px, y_px`` and
     ``code`` (AOI index holding most of the part's time; reserved codes
     below 0), ``clipped`` (the part is not the whole fixation).
+
+    ``w`` must be 0 outside fixations (as :func:`sample_weights` makes it):
+    per-part sums run over whole columns with one ``bincount`` each.
     """
-    is_fix = fid >= 0
-    idx = np.flatnonzero(is_fix)
     cols = ["fixation", "trial_row", "onset_ms", "offset_ms", "duration_ms", "x_px", "y_px",
             "code", "clipped"]
-    if len(idx) == 0:
+    n = len(fid)
+    is_fix = fid >= 0
+    if n == 0 or not is_fix.any():
         return pd.DataFrame({c: pd.Series([], dtype=float if c.endswith(("_ms", "_px"))
                                           else (bool if c == "clipped" else "int64"))
                              for c in cols})
-    f, tr = fid[idx], trial_idx[idx]
-    new = np.ones(len(idx), dtype=bool)
-    new[1:] = (f[1:] != f[:-1]) | (tr[1:] != tr[:-1]) | (idx[1:] != idx[:-1] + 1)
-    part = np.cumsum(new) - 1
-    first = idx[new]
-    last = idx[np.append(new[1:], True)]
+    # a part starts where the fixation or the trial changes, on a fixation sample
+    cut = np.flatnonzero((fid[1:] != fid[:-1]) | (trial_idx[1:] != trial_idx[:-1])) + 1
+    first = np.concatenate([[0], cut]) if is_fix[0] else cut
+    first = first[is_fix[first]]
     n_parts = len(first)
+    f_first = fid[first]
+    # a part ends at the next part's start or at its fixation's end
+    fix_end = fixations["end_row"].to_numpy(np.int64)[f_first]
+    nxt = np.append(first[1:], n)
+    last = np.minimum(nxt, fix_end) - 1
+    mark = np.zeros(n, dtype=np.int64)
+    mark[first] = 1
+    part = np.cumsum(mark, out=mark)
+    part -= 1
+    np.maximum(part, 0, out=part)  # samples before the first part carry no weight
     # a part ends where its last sample's own time ends (``w`` may also carry
     # time cut off at a trial boundary before that sample)
     own = w if w_own is None else w_own
     offset = t_ms[last] + own[last]
     # a part starts where its time starts (a trial boundary for a clipped part)
-    onset = offset - np.bincount(part, weights=w[idx], minlength=len(first))
+    onset = offset - np.bincount(part, weights=w, minlength=n_parts)[:n_parts]
     fx = fixations["x_px"].to_numpy(float)
     fy = fixations["y_px"].to_numpy(float)
     fixno = fixations["fixation"].to_numpy(np.int64)
     # majority code by time: codes shifted to be >= 0
     shift = -CODE_OFF_VIDEO
-    key = part * (n_codes + shift) + (np.maximum(code[idx], CODE_OFF_VIDEO) + shift)
-    tot = np.bincount(key, weights=w[idx], minlength=n_parts * (n_codes + shift))
-    tot = tot.reshape(n_parts, n_codes + shift)
-    best = tot.argmax(axis=1) - shift
-    whole_on = fixations["onset_ms"].to_numpy(float)[f[new]]
-    whole_off = fixations["offset_ms"].to_numpy(float)[f[new]]
+    width = n_codes + shift
+    key = part
+    key *= width
+    key += np.maximum(code, CODE_OFF_VIDEO)
+    key += shift
+    tot = np.bincount(key, weights=w, minlength=n_parts * width)[:n_parts * width]
+    del key, part
+    best = tot.reshape(n_parts, width).argmax(axis=1) - shift
+    whole_on = fixations["onset_ms"].to_numpy(float)[f_first]
+    whole_off = fixations["offset_ms"].to_numpy(float)[f_first]
     clipped = (np.abs(onset - whole_on) > 1e-9) | (np.abs(offset - whole_off) > 1e-9)
     return pd.DataFrame({
-        "fixation": fixno[f[new]], "trial_row": tr[new], "onset_ms": onset,
-        "offset_ms": offset, "duration_ms": offset - onset,
-        "x_px": fx[f[new]], "y_px": fy[f[new]], "code": best, "clipped": clipped})
+        "fixation": fixno[f_first], "trial_row": trial_idx[first].astype(np.int64),
+        "onset_ms": onset, "offset_ms": offset, "duration_ms": offset - onset,
+        "x_px": fx[f_first], "y_px": fy[f_first], "code": best, "clipped": clipped})
 
 
 def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
@@ -159,13 +213,18 @@ def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
     Vectorised with ``bincount`` over (trial, code) keys; the only loop builds
     the label list per trial.
     """
-    in_trial = trial_idx >= 0
-    ti, ci, wi = trial_idx[in_trial], code[in_trial], w[in_trial]
     n_tr = len(trials)
     shift = -CODE_OFF_VIDEO
     width = max((len(n) for n in names_by_trial), default=0) + shift
-    key = ti * width + (np.maximum(ci, CODE_OFF_VIDEO) + shift)
-    tot = np.bincount(key, weights=wi, minlength=n_tr * width).reshape(n_tr, width)
+    # samples outside trials go to a first row of bins that is dropped
+    key = np.maximum(trial_idx, -1).astype(np.int64)
+    key += 1
+    key *= width
+    key += np.maximum(code, CODE_OFF_VIDEO)
+    key += shift
+    tot = np.bincount(key, weights=w, minlength=(n_tr + 1) * width)
+    del key
+    tot = tot[width:(n_tr + 1) * width].reshape(n_tr, width)
     p = parts[parts["trial_row"].to_numpy() >= 0]
     pk = p["trial_row"].to_numpy(np.int64) * width + (p["code"].to_numpy(np.int64) + shift)
     n_fix = np.bincount(pk, minlength=n_tr * width).reshape(n_tr, width)
@@ -197,6 +256,26 @@ def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
         "first_fixation_ms": np.where(np.isfinite(f), f - start, np.nan)})
 
 
+def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.ndarray]:
+    """Per trial: the sum of each of ``values`` over its samples (None = sample count).
+
+    Samples outside trials (-1) go to a bin that is dropped, so no column is
+    masked or copied.
+
+    >>> per_trial_sums(np.array([-1, 0, 0, 1]), 2, None, np.array([1., 2, 3, 4]))
+    [array([2, 1]), array([5., 4.])]
+    """
+    key = np.maximum(trial_idx, -1).astype(np.int64)
+    key += 1
+    out = []
+    for v in values:  # a few columns
+        if v is None:
+            out.append(np.bincount(key, minlength=n_trials + 1)[1:n_trials + 1])
+        else:
+            out.append(np.bincount(key, weights=v, minlength=n_trials + 1)[1:n_trials + 1])
+    return out
+
+
 def trial_quality(trials: pd.DataFrame, trial_idx: np.ndarray, raw_valid: np.ndarray,
                   w: np.ndarray, interval_ms: float, *, min_valid_fraction: float) -> pd.DataFrame:
     """Per-trial validity and fixation time.
@@ -206,10 +285,7 @@ def trial_quality(trials: pd.DataFrame, trial_idx: np.ndarray, raw_valid: np.nda
     trial duration, capped at 1.  A pause in the recording lowers it.
     """
     n_tr = len(trials)
-    sel = trial_idx >= 0
-    n_samples = np.bincount(trial_idx[sel], minlength=n_tr)
-    n_valid = np.bincount(trial_idx[sel], weights=raw_valid[sel].astype(float), minlength=n_tr)
-    fix_ms = np.bincount(trial_idx[sel], weights=w[sel], minlength=n_tr)
+    n_samples, n_valid, fix_ms = per_trial_sums(trial_idx, n_tr, None, raw_valid, w)
     dur = trials["end_ms"].to_numpy(float) - trials["start_ms"].to_numpy(float)
     vf = np.minimum(n_valid * interval_ms / dur, 1.0)
     return pd.DataFrame({

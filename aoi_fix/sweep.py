@@ -405,8 +405,9 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
             xi, yi = _full_interpolation(session.samples)
             cache[codes_key] = match_session(session, x_px=xi, y_px=yi, base=placement)
         matched = cache[codes_key]
-    w_own = sample_weights(t, fid, fixations, _boundaries(session.trials))
-    w = w_own + carry_weights(t, fid, w_own)
+    bounds = _boundaries(session.trials)
+    w_own = sample_weights(t, fid, fixations, bounds)
+    w = w_own + carry_weights(t, fid, w_own, bounds)
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes,
                            w_own=w_own)

@@ -38,6 +38,7 @@ __all__ = [
     "TIME_UNIT_TO_MS",
     "TRIAL_COLUMNS",
     "read_trials",
+    "placement_sorted",
     "fit_video",
     "assign_trials",
     "frame_index",
@@ -329,6 +330,49 @@ def assign_trials(t_ms, trials: pd.DataFrame) -> np.ndarray:
     safe = np.clip(pos, 0, None)
     inside = (pos >= 0) & (t < e_sorted[safe])  # NaN compares False
     return np.where(inside, order[safe], -1).astype(np.int64)
+
+
+def placement_sorted(t_ms: np.ndarray, trials: pd.DataFrame,
+                     stimuli: Mapping[str, Stimulus]) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`assign_trials` and :func:`frame_index` at once, for increasing times.
+
+    Sample times of a recording only increase, so each trial is one slice of
+    the samples, found by binary search; the loop runs over trials and each
+    slice is filled with one vectorised expression.  Same results as the two
+    general functions (tested), with no per-sample temporaries.
+
+    >>> from aoi_fix.config import Stimulus
+    >>> tr = pd.DataFrame({"stimulus": ["a"], "start_ms": [1000.0], "end_ms": [1100.0]})
+    >>> st = {"a": Stimulus(fps=25.0, width_px=4, height_px=3)}
+    >>> idx, fr = placement_sorted(np.array([990.0, 1000.0, 1040.0, 1099.9, 2000.0]), tr, st)
+    >>> idx.tolist(), fr.tolist()
+    ([-1, 0, 0, 0, -1], [-1, 0, 1, 2, -1])
+    """
+    t = np.asarray(t_ms, dtype=float)
+    n = len(t)
+    trial_idx = np.full(n, -1, dtype=np.int64)
+    frame = np.full(n, -1, dtype=np.int64)
+    if len(trials) == 0 or n == 0:
+        return trial_idx, frame
+    fps = _per_trial(trials, stimuli, "fps")
+    last = frame_count(trials, stimuli) - 1
+    start = trials["start_ms"].to_numpy(float)
+    end = trials["end_ms"].to_numpy(float)
+    a = np.searchsorted(t, start, side="left")
+    b = np.searchsorted(t, end, side="left")
+    for k in range(len(trials)):  # a loop over trials
+        lo, hi = int(a[k]), int(b[k])
+        if hi <= lo:
+            continue
+        trial_idx[lo:hi] = k
+        f = t[lo:hi] - start[k]
+        f *= fps[k]
+        f /= 1000.0
+        f += _FRAME_EPS
+        np.floor(f, out=f)
+        np.clip(f, 0, last[k], out=f)
+        frame[lo:hi] = f
+    return trial_idx, frame
 
 
 def _per_trial(trials: pd.DataFrame, stimuli: Mapping[str, Stimulus], attr: str) -> np.ndarray:

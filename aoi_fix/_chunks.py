@@ -56,7 +56,7 @@ def blocks(n: int, size: int = BLOCK) -> list[tuple[int, int]]:
     return [(a, min(a + size, n)) for a in range(0, n, size)]
 
 
-def map_blocks(func: Callable[[int, int], R], n: int, *, size: int = BLOCK) -> list[R]:
+def map_blocks(func: Callable[[int, int], R], n: int, *, size: int | None = None) -> list[R]:
     """``[func(a, b) for (a, b) in blocks(n, size)]``, on :func:`threads` threads.
 
     ``func`` must only write its own ``[a, b)`` slice of shared outputs.
@@ -69,7 +69,7 @@ def map_blocks(func: Callable[[int, int], R], n: int, *, size: int = BLOCK) -> l
     >>> map_blocks(fill, 10, size=3), float(out[-1])
     ([3, 3, 3, 1], 18.0)
     """
-    parts = blocks(n, size)
+    parts = blocks(n, BLOCK if size is None else size)
     k = min(threads(), len(parts))
     if k <= 1:
         return [func(a, b) for a, b in parts]
@@ -80,3 +80,8 @@ def map_blocks(func: Callable[[int, int], R], n: int, *, size: int = BLOCK) -> l
 def split(idx: np.ndarray, size: int = BLOCK) -> list[np.ndarray]:
     """``idx`` cut into consecutive pieces of at most ``size`` (views)."""
     return [idx[a:b] for a, b in blocks(len(idx), size)]
+
+
+def single_thread_worker() -> None:
+    """Process-pool initializer: one thread per worker (the pool gives the parallelism)."""
+    os.environ["AOI_FIX_THREADS"] = "1"

@@ -55,6 +55,7 @@ from __future__ import annotations
 
 import json
 import math
+import threading
 import warnings
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
@@ -91,11 +92,13 @@ _DENSE_MAX_RATIO = 64
 class _Track:
     """Geometry of one AOI of one stimulus: fixed, or one polygon per listed frame."""
 
-    __slots__ = ("static", "frames", "geoms", "lookup", "median_area", "_buffered", "hold")
+    __slots__ = ("static", "frames", "geoms", "lookup", "median_area", "_buffered", "hold",
+                 "_local")
 
     def __init__(self, frames: np.ndarray, geoms: np.ndarray, hold: bool = False):
         self.hold = hold  # the last polygon also holds for every later frame (keyframes)
         self._buffered: dict[float, tuple] = {}
+        self._local = threading.local()
         if frames.size == 1 and frames[0] < 0:
             self.static = geoms[0]
             self.frames = np.empty(0, dtype=np.int64)
@@ -141,14 +144,31 @@ class _Track:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             b = shapely.bounds(geoms)  # NaN for the None slot
-        # one query per polygon builds GEOS's lazily made point locators now,
-        # so that threads testing points later only read shared state
-        real = np.flatnonzero(np.isfinite(b[:, 0]))
-        if len(real):
-            shapely.intersects_xy(geoms[real], b[real, 0], b[real, 1])
         out = (geoms, *(np.ascontiguousarray(b[:, k]) for k in range(4)))
         self._buffered[margin_px] = out
         return out
+
+    def geoms_here(self, margin_px: float) -> np.ndarray:
+        """The prepared polygons of :meth:`buffered`, as this thread's own copy.
+
+        GEOS builds parts of a prepared polygon lazily, on its first queries,
+        so threads must not query one prepared polygon at the same time (we
+        saw heap corruption when they did).  Worker threads therefore get a
+        private clone, prepared for them and kept while the thread lives; the
+        main thread uses the shared one.
+        """
+        geoms = self.buffered(margin_px)[0]
+        if threading.current_thread() is threading.main_thread():
+            return geoms
+        mine = getattr(self._local, "geoms", None)
+        if mine is None:
+            mine = self._local.geoms = {}
+        g = mine.get(margin_px)
+        if g is None:
+            g = shapely.from_wkb(shapely.to_wkb(geoms))
+            shapely.prepare(g)
+            mine[margin_px] = g
+        return g
 
 
 class AoiTable:
@@ -666,7 +686,8 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
     res = np.full(idx.size, -1, dtype=np.int64)
     for rank, name in enumerate(order):
         track = aois._track(stimulus, name)
-        geoms, minx, miny, maxx, maxy = track.buffered(margin_px)
+        _, minx, miny, maxx, maxy = track.buffered(margin_px)
+        geoms = track.geoms_here(margin_px)
         if track.static is not None:
             cand = ((res < 0) & (xs >= minx[0]) & (xs <= maxx[0])
                     & (ys >= miny[0]) & (ys <= maxy[0]))
@@ -686,8 +707,8 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
 def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0) -> None:
     """Grow, prepare and index every AOI of a stimulus for ``margin_px`` now.
 
-    :func:`match_points` does this on first use; calling it first makes the
-    shared geometry read-only for threads that then test points in parallel.
+    :func:`match_points` does this on first use; calling it before threads
+    test points in parallel keeps the shared cache from being filled twice.
     """
     for name in aois.names(stimulus):
         aois._track(stimulus, name).buffered(float(margin_px))

@@ -513,7 +513,10 @@ def _run_local(tasks: list[SessionTask], jobs: int, done: Callable[[dict], None]
         return
     from concurrent.futures.process import BrokenProcessPool
 
-    with ProcessPoolExecutor(max_workers=min(jobs, len(tasks))) as pool:
+    from ._chunks import single_thread_worker
+
+    with ProcessPoolExecutor(max_workers=min(jobs, len(tasks)),
+                             initializer=single_thread_worker) as pool:
         futures = {pool.submit(run_session, t): t for t in tasks}
         for fut in as_completed(futures):
             try:

@@ -208,8 +208,7 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     from ._chunks import map_blocks
     from .aois import match_points, prepare_tracks
     from .summary import CODE_NONE, CODE_NOT_IN_TRIAL, CODE_OFF_VIDEO
-    from .trials import (assign_trials, frame_index, on_video, placement_sorted,
-                         screen_to_video)
+    from .trials import assign_trials, frame_index, placement_sorted
 
     study, trials = session.study, session.trials
     t = session.samples["t_ms"].to_numpy(float)
@@ -242,6 +241,11 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         if stim in stimuli_with_aois:
             prepare_tracks(session.aois, stim, margin_px=margin_vid)
 
+    mx, my, mw, mh = (trials[c].to_numpy(float) for c in
+                      ("media_x_px", "media_y_px", "media_width_px", "media_height_px"))
+    sx = np.array([study.stimuli[s].width_px for s in trials["stimulus"]], float) / mw
+    sy = np.array([study.stimuli[s].height_px for s in trials["stimulus"]], float) / mh
+
     def block(a, b):  # samples a..b-1: place on the video and hit-test
         has = trial_idx[a:b] >= 0
         if rows is not None:
@@ -253,10 +257,16 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
             return
         cand += a
         x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
-        onv = on_video(x_c, y_c, tr_c, trials)
+        # on the drawn video (edges included, as trials.on_video), then video px
+        # (as trials.screen_to_video); plain arrays only: no pandas in threads
+        x0, y0 = mx[tr_c], my[tr_c]
+        onv = (x_c >= x0) & (x_c <= x0 + mw[tr_c]) & (y_c >= y0) & (y_c <= y0 + mh[tr_c])
+        x_c -= x0
+        y_c -= y0
         code[cand[~onv]] = CODE_OFF_VIDEO
         cand, x_c, y_c, tr_c = cand[onv], x_c[onv], y_c[onv], tr_c[onv]
-        xv, yv = screen_to_video(x_c, y_c, tr_c, trials, study.stimuli)
+        xv = x_c * sx[tr_c]
+        yv = y_c * sy[tr_c]
         g_of = group_of_trial[tr_c]
         for g in np.unique(g_of):  # a loop over the (video, scale) groups in this block
             sel = np.flatnonzero(g_of == g) if len(group_list) > 1 else slice(None)

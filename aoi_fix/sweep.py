@@ -436,6 +436,9 @@ _WORKER: dict = {}
 
 
 def _init_worker(session, placement, settings) -> None:
+    from ._chunks import single_thread_worker
+
+    single_thread_worker()
     _WORKER.clear()
     _WORKER.update(session=session, placement=placement, settings=settings, cache={})
 

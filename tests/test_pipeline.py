@@ -506,3 +506,32 @@ def test_cli_demo(tmp_path):
     for _, g in s.groupby("trial"):
         assert g["pct_fixation"].sum() == pytest.approx(100.0, abs=1e-4) or \
             g["pct_fixation"].isna().all()
+
+
+# --------------------------------------------------------------------------- threads
+
+def test_blocks_and_threads_do_not_change_results(tmp_path, monkeypatch):
+    """Block size and thread count are implementation details (aoi_fix._chunks).
+
+    Many small blocks on two threads must give exactly the tables of one
+    thread; several repeats also exercise concurrent hit testing on shared
+    AOI tables (GEOS prepared polygons are cloned per worker thread).
+    """
+    from aoi_fix import _chunks, simulate
+    from aoi_fix.pipeline import convert_session, load_session
+
+    ses = simulate.simulate_session("lab_300hz_seconds", n_trials=3, seed=5)
+    p = simulate.write_session(ses, tmp_path)
+
+    def run():
+        s = load_session(p["samples"], p["study"], p["trials"], p["aois"])
+        return convert_session(s)
+
+    monkeypatch.setenv("AOI_FIX_THREADS", "1")
+    one = run()
+    monkeypatch.setenv("AOI_FIX_THREADS", "2")
+    monkeypatch.setattr(_chunks, "BLOCK", 997)
+    for _ in range(3):
+        many = run()
+        for name in ("fixations", "aoi_summary", "trial_quality"):
+            pd.testing.assert_frame_equal(one[name], many[name], check_exact=True)

@@ -50,25 +50,6 @@ def _ensure_filled(samples: pd.DataFrame, interval_ms: float) -> pd.DataFrame:
     return fill_gaps(samples, max_gap_ms=0.0, interval_ms=interval_ms)
 
 
-def _segment_bounds(segment: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per sample: first row and one-past-last row of its segment (-1 when lost)."""
-    n = len(segment)
-    idx = np.arange(n)
-    ok = segment >= 0
-    start = np.full(n, -1, dtype=np.int64)
-    end = np.full(n, -1, dtype=np.int64)
-    if not ok.any():
-        return start, end
-    new = ok & np.concatenate([[True], segment[1:] != segment[:-1]])
-    last = ok & np.concatenate([segment[1:] != segment[:-1], [True]])
-    starts = idx[new]
-    ends = idx[last] + 1
-    seg_no = np.cumsum(new) - 1
-    start[ok] = starts[seg_no[ok]]
-    end[ok] = ends[seg_no[ok]]
-    return start, end
-
-
 def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
            y: np.ndarray, raw_valid: np.ndarray, interval_ms: float) -> pd.DataFrame:
     """Fixation table from sample runs [starts, ends)."""
@@ -147,11 +128,23 @@ def _arrays(samples: pd.DataFrame):
 
 def _window_bounds(seg: np.ndarray, h: int, rows: np.ndarray):
     """lo, hi sample rows of the +-h window of ``rows``, clamped to their segment."""
-    s_start, s_end = _segment_bounds(seg)
+    s0, s1 = _segment_runs(seg)
     ok = seg[rows] >= 0
-    lo = np.where(ok, np.maximum(rows - h, s_start[rows]), rows)
-    hi = np.where(ok, np.minimum(rows + h, s_end[rows] - 1), rows)
+    k = np.maximum(np.searchsorted(s0, rows, side="right") - 1, 0)
+    if len(s0):
+        lo = np.where(ok, np.maximum(rows - h, s0[k]), rows)
+        hi = np.where(ok, np.minimum(rows + h, s1[k] - 1), rows)
+    else:
+        lo, hi = rows.copy(), rows.copy()
     return lo, hi, ok
+
+
+def _segment_end_of_rows(seg: np.ndarray) -> np.ndarray:
+    """One past the last row of each sample's segment (-1 for lost samples)."""
+    s0, s1 = _segment_runs(seg)
+    end = np.full(len(seg), -1, dtype=np.int64)
+    end[seg >= 0] = np.repeat(s1, s1 - s0)
+    return end
 
 
 def _prepared(samples, display, window_ms, interval_ms, smoothing, smoothing_window_ms):
@@ -462,13 +455,12 @@ def _refine_edges(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.nda
     g = np.flatnonzero(gap_ok)
     if len(g) == 0:
         return starts, ends
-    step = np.hypot(np.diff(x), np.diff(y))  # interval i: sample i -> i + 1
     first = ends[g] - 1  # interval leaving the last fixation sample
     last = starts[g + 1] - 1  # interval entering the next fixation
     lengths = last - first + 1
     offsets = np.concatenate([[0], np.cumsum(lengths)[:-1]])
     idx = np.repeat(first - offsets, lengths) + np.arange(lengths.sum())
-    sp = step[idx]
+    sp = np.hypot(x[idx + 1] - x[idx], y[idx + 1] - y[idx])  # step of interval i -> i + 1
     peak = np.maximum.reduceat(sp, offsets)
     fast = sp >= rel_step * np.repeat(peak, lengths)
     big = np.iinfo(np.int64).max
@@ -483,16 +475,26 @@ def _refine_edges(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.nda
 
 # --------------------------------------------------------------------------- I-DT
 
-def _rolling_extrema(a: np.ndarray, size: int):
-    """Max and min of a[i:i+size] for every i (tail positions are garbage)."""
+def _rolling_dispersion(ax: np.ndarray, ay: np.ndarray, size: int) -> np.ndarray:
+    """``(max - min)`` of ``ax`` plus that of ``ay`` over ``[i, i + size)`` for every i.
+
+    O(n) rolling extrema (van Herk/Gil-Werman, via ``scipy.ndimage``); the
+    last ``size - 1`` positions (windows past the end) are +inf.
+    """
     from scipy.ndimage import maximum_filter1d, minimum_filter1d
 
-    shift = size // 2
-    mx = maximum_filter1d(a, size=size, mode="nearest")
-    mn = minimum_filter1d(a, size=size, mode="nearest")
-    n = len(a)
-    pos = np.minimum(np.arange(n) + shift, n - 1)
-    return mx[pos], mn[pos]
+    n = len(ax)
+    shift = size // 2  # the filters centre the window: value i + shift covers [i, i + size)
+    out = np.full(n, np.inf)
+    m = n - size + 1
+    if m <= 0:
+        return out
+    d = maximum_filter1d(ax, size=size, mode="nearest")[shift:shift + m]
+    d -= minimum_filter1d(ax, size=size, mode="nearest")[shift:shift + m]
+    d += maximum_filter1d(ay, size=size, mode="nearest")[shift:shift + m]
+    d -= minimum_filter1d(ay, size=size, mode="nearest")[shift:shift + m]
+    out[:m] = d
+    return out
 
 
 def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: float = 1.0,
@@ -531,7 +533,7 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     ax, ay = geometry.px_to_deg(x, y, display)
     ax = np.where(seg >= 0, ax, 0.0)
     ay = np.where(seg >= 0, ay, 0.0)
-    s_start, s_end = _segment_bounds(seg)
+    s_end = _segment_end_of_rows(seg)
     # window end (exclusive) for each start: first j with t[j-1] >= t[i] + min - interval
     eps = 1e-9 * max(1.0, float(np.abs(t).max()))
     last = np.searchsorted(t, t + min_fixation_ms - interval_ms - eps, side="left")
@@ -542,32 +544,30 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     disp = np.full(n, np.inf)
     for L in np.unique(size[ok]):  # a loop over window sizes (one or a few)
         sel = ok & (size == L)
-        mxx, mnx = _rolling_extrema(ax, int(L))
-        mxy, mny = _rolling_extrema(ay, int(L))
-        disp[sel] = (mxx - mnx + mxy - mny)[sel]
+        disp[sel] = _rolling_dispersion(ax, ay, int(L))[sel]
     ok &= disp <= dispersion_threshold_deg
     # next_ok[i]: first ok start at or after i (n when none)
     cand = np.where(ok, np.arange(n), n)
     next_ok = np.minimum.accumulate(cand[::-1])[::-1]
     next_ok = np.concatenate([next_ok, [n]])
     starts, ends = [], []
-    s_end_l, w_end_l, next_ok_l = s_end.tolist(), w_end.tolist(), next_ok.tolist()
     thr = dispersion_threshold_deg
     mx_acc, mn_acc = np.maximum.accumulate, np.minimum.accumulate
-    i = next_ok_l[0]
+    axy = np.vstack([ax, ay])  # both axes in one call per step
+    i = int(next_ok[0])
     while i < n:  # one iteration per fixation
-        stop = s_end_l[i]
-        j0 = w_end_l[i]
-        m = max(2 * (j0 - i), 64)
+        stop = int(s_end[i])
+        j0 = int(w_end[i])
+        m = max(4 * (j0 - i), 256)
         while True:
             hi = min(i + m, stop)
-            bx, by = ax[i:hi], ay[i:hi]
-            d = mx_acc(bx) - mn_acc(bx)
-            d += mx_acc(by)
-            d -= mn_acc(by)
-            over = np.flatnonzero(d[j0 - i:] > thr)
-            if len(over):
-                e = j0 + int(over[0])
+            b = axy[:, i:hi]
+            r = mx_acc(b, axis=1)
+            r -= mn_acc(b, axis=1)
+            over = (r[0] + r[1])[j0 - i:] > thr
+            k = int(over.argmax()) if len(over) else 0
+            if len(over) and over[k]:
+                e = j0 + k
                 break
             if hi >= stop:
                 e = stop
@@ -575,7 +575,7 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
             m *= 2
         starts.append(i)
         ends.append(e)
-        i = next_ok_l[e]
+        i = int(next_ok[e])
     out = _table(np.array(starts), np.array(ends), t, x, y, raw_valid, interval_ms)
     return out
 

@@ -23,8 +23,8 @@ from __future__ import annotations
 import argparse
 import cProfile
 import io
+import os
 import pstats
-import resource
 import subprocess
 import sys
 import time
@@ -35,13 +35,19 @@ BIN = Path(sys.executable).parent
 
 
 def _child(cmd: list[str]) -> tuple[float, float]:
-    """Run a command; return wall seconds and the child's peak RSS in MB."""
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    """Run a command; return wall seconds and this child's own peak RSS in MB.
+
+    ``os.wait4`` gives the resource usage of exactly this child
+    (``RUSAGE_CHILDREN`` would be the largest of all children so far).
+    """
     t0 = time.perf_counter()
-    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    _, status, usage = os.wait4(proc.pid, 0)
     dt = time.perf_counter() - t0
-    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    return dt, max(after, before) / 1024.0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    if proc.returncode != 0:
+        raise subprocess.CalledProcessError(proc.returncode, cmd)
+    return dt, usage.ru_maxrss / 1024.0
 
 
 def _best(cmd, repeat=2):

@@ -23,7 +23,6 @@ from __future__ import annotations
 import argparse
 import cProfile
 import io
-import os
 import pstats
 import subprocess
 import sys
@@ -34,20 +33,30 @@ OUT = Path(__file__).resolve().parent / "out"
 BIN = Path(sys.executable).parent
 
 
-def _child(cmd: list[str]) -> tuple[float, float]:
-    """Run a command; return wall seconds and this child's own peak RSS in MB.
+# A small launcher reports its child's peak RSS: a child forked straight from this
+# (large) benchmark process would count our own memory in its ru_maxrss, since
+# Linux keeps the high-water mark of the pre-exec copy.
+_LAUNCH = ("import resource, subprocess, sys; "
+           "r = subprocess.run(sys.argv[1:], stdout=subprocess.DEVNULL, "
+           "stderr=subprocess.DEVNULL).returncode; "
+           "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss); sys.exit(r)")
 
-    ``os.wait4`` gives the resource usage of exactly this child
-    (``RUSAGE_CHILDREN`` would be the largest of all children so far).
+
+def _child(cmd: list[str], *, memory: bool = True) -> tuple[float, float]:
+    """Run a command; return wall seconds and its own peak RSS in MB (0 if not asked).
+
+    With ``memory`` the command runs under a small launcher process (a constant
+    start-up cost that cancels in marginal costs); without, directly (start-up
+    timings).
     """
+    full = [sys.executable, "-c", _LAUNCH, *cmd] if memory else cmd
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    _, status, usage = os.wait4(proc.pid, 0)
+    proc = subprocess.run(full, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
     dt = time.perf_counter() - t0
-    proc.returncode = os.waitstatus_to_exitcode(status)
     if proc.returncode != 0:
         raise subprocess.CalledProcessError(proc.returncode, cmd)
-    return dt, usage.ru_maxrss / 1024.0
+    mb = float(proc.stdout.split()[-1]) / 1024.0 if memory else 0.0
+    return dt, mb
 
 
 def _best(cmd, repeat=2):
@@ -144,8 +153,8 @@ def main(argv=None) -> int:
         return (b[k] - a[k]) / dn
 
     naive = naive_loop_seconds_per_sample(b["paths"])
-    start = min(_child([aoi_fix, "--version"])[0] for _ in range(3))
-    helps = min(_child([aoi_fix, "--help"])[0] for _ in range(3))
+    start = min(_child([aoi_fix, "--version"], memory=False)[0] for _ in range(3))
+    helps = min(_child([aoi_fix, "--help"], memory=False)[0] for _ in range(3))
     print("\nratios of marginal cost per sample (targets in brackets):")
     print(f"  fixations (I-VT) / pyarrow read_csv : {marg('ivt') / marg('read'):.2f}  [<= 2.0]")
     print(f"  convert / pyarrow read_csv          : {marg('convert') / marg('read'):.2f}  "

@@ -257,3 +257,30 @@ def test_screen_to_video_with_explicit_placement():
     xv, yv = screen_to_video([100, 300, 500], [50, 150, 250], [0, 0, 0], df, STUDY.stimuli)
     assert xv.tolist() == [0.0, 320.0, 640.0]
     assert yv.tolist() == [0.0, 240.0, 480.0]
+
+
+# --------------------------------------------------------------------------- sorted fast path
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.integers(min_value=0, max_value=4000), min_size=1, max_size=300,
+                unique=True),
+       st.sampled_from([24.0, 25.0, 29.97, 30.0, 60.0]))
+def test_placement_sorted_equals_the_general_functions(ticks, fps):
+    """The binary-search path gives exactly assign_trials + frame_index.
+
+    Times are multiples of 2.5 ms, so many fall exactly on trial starts, ends
+    and 40 ms frame boundaries (the edge rules: start inclusive, end exclusive;
+    a time on a frame boundary is the later frame).  Trials are listed out of
+    time order, with a gap between them.
+    """
+    from aoi_fix.trials import placement_sorted
+
+    t = np.sort(np.asarray(ticks, float)) * 2.5
+    tr = pd.DataFrame({"stimulus": ["b", "a", "a"], "start_ms": [6000.0, 100.0, 3000.0],
+                       "end_ms": [9000.0, 3000.0, 5000.0]})
+    stim = {"a": Stimulus(fps=fps, width_px=4, height_px=3),
+            "b": Stimulus(fps=25.0, width_px=4, height_px=3)}
+    idx, fr = placement_sorted(t, tr, stim)
+    want_idx = assign_trials(t, tr)
+    assert idx.tolist() == want_idx.tolist()
+    assert fr.tolist() == frame_index(t, want_idx, tr, stim).tolist()

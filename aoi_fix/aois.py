@@ -707,8 +707,10 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
 def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0) -> None:
     """Grow, prepare and index every AOI of a stimulus for ``margin_px`` now.
 
-    :func:`match_points` does this on first use; calling it before threads
-    test points in parallel keeps the shared cache from being filled twice.
+    :func:`match_points` does this on first use.  ``shapely.prepare`` writes
+    into the geometry objects, so it must happen once, before threads test
+    points in parallel (each of them then clones the prepared polygons,
+    :meth:`_Track.geoms_here`).
     """
     for name in aois.names(stimulus):
         aois._track(stimulus, name).buffered(float(margin_px))

@@ -183,8 +183,9 @@ def _edge_windows(seg: np.ndarray, h: int):
         e = np.zeros(0, np.int64)
         return e, e, e
     k = np.minimum(h, s1 - s0)
-    head = np.repeat(s0, k) + (np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k))
-    tail = np.repeat(s1 - k, k) + (np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k))
+    within = np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k)  # 0..k-1 per segment
+    head = np.repeat(s0, k) + within
+    tail = np.repeat(s1 - k, k) + within
     which = np.concatenate([np.repeat(np.arange(len(s0)), k)] * 2)
     rows, first = np.unique(np.concatenate([head, tail]), return_index=True)
     which = which[first]
@@ -193,17 +194,15 @@ def _edge_windows(seg: np.ndarray, h: int):
     return rows, lo, hi
 
 
-def _unit_rate(ux, uy, uz, a, b, dt_ms):
-    """Angular rate (deg/s) between unit vectors at rows ``a`` and ``b`` over ``dt_ms``."""
-    c2 = ux[b] - ux[a]
+def _chord_sq(u, v):
+    """Squared chord between the unit vectors ``u = (ux, uy, uz)`` and ``v``."""
+    c2 = v[0] - u[0]
     c2 *= c2
-    d = uy[b] - uy[a]
-    d *= d
-    c2 += d
-    d = uz[b] - uz[a]
-    d *= d
-    c2 += d
-    return _chord_rate(c2, dt_ms)
+    for k in (1, 2):  # the other two components
+        d = v[k] - u[k]
+        d *= d
+        c2 += d
+    return c2
 
 
 def _chord_rate(c2, dt_ms):
@@ -253,16 +252,9 @@ def _speed(t, x, y, seg, h, display) -> np.ndarray:
         if i1 <= i0:
             return
         lo, hi = i0 - h, i1 + h
-        ux, uy, uz = _unit_vectors(x[lo:hi], y[lo:hi], display)
+        u = _unit_vectors(x[lo:hi], y[lo:hi], display)
         m = i1 - i0
-        c2 = ux[2 * h:2 * h + m] - ux[:m]
-        c2 *= c2
-        d = uy[2 * h:2 * h + m] - uy[:m]
-        d *= d
-        c2 += d
-        d = uz[2 * h:2 * h + m] - uz[:m]
-        d *= d
-        c2 += d
+        c2 = _chord_sq([a[:m] for a in u], [a[2 * h:2 * h + m] for a in u])
         speed[i0:i1] = _chord_rate(c2, t[i0 + h:i1 + h] - t[i0 - h:i1 - h])
 
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -270,14 +262,9 @@ def _speed(t, x, y, seg, h, display) -> np.ndarray:
         # samples whose window leaves their segment (or the recording): clamp
         rows, lo, hi = _edge_windows(seg, h)
         if len(rows):
-            ux, uy, uz = _unit_vectors(x, y, display) if len(rows) > n // 4 else (None,) * 3
-            if ux is None:
-                both = np.concatenate([lo, hi])
-                vx, vy, vz = _unit_vectors(x[both], y[both], display)
-                a, b = np.arange(len(lo)), np.arange(len(lo), 2 * len(lo))
-                speed[rows] = _unit_rate(vx, vy, vz, a, b, t[hi] - t[lo])
-            else:
-                speed[rows] = _unit_rate(ux, uy, uz, lo, hi, t[hi] - t[lo])
+            c2 = _chord_sq(_unit_vectors(x[lo], y[lo], display),
+                           _unit_vectors(x[hi], y[hi], display))
+            speed[rows] = _chord_rate(c2, t[hi] - t[lo])
             speed[rows[hi == lo]] = np.nan
     speed[seg < 0] = np.nan
     return speed

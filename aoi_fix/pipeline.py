@@ -208,7 +208,8 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     from ._chunks import map_blocks
     from .aois import match_points, prepare_tracks
     from .summary import CODE_NONE, CODE_NOT_IN_TRIAL, CODE_OFF_VIDEO
-    from .trials import assign_trials, frame_index, placement_sorted
+    from .trials import (assign_trials, frame_index, media_rect, on_video_at,
+                         placement_sorted, to_video_at, video_scale)
 
     study, trials = session.study, session.trials
     t = session.samples["t_ms"].to_numpy(float)
@@ -241,10 +242,7 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         if stim in stimuli_with_aois:
             prepare_tracks(session.aois, stim, margin_px=margin_vid)
 
-    mx, my, mw, mh = (trials[c].to_numpy(float) for c in
-                      ("media_x_px", "media_y_px", "media_width_px", "media_height_px"))
-    sx = np.array([study.stimuli[s].width_px for s in trials["stimulus"]], float) / mw
-    sy = np.array([study.stimuli[s].height_px for s in trials["stimulus"]], float) / mh
+    rect, scale = media_rect(trials), video_scale(trials, study.stimuli)
 
     def block(a, b):  # samples a..b-1: place on the video and hit-test
         has = trial_idx[a:b] >= 0
@@ -257,16 +255,10 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
             return
         cand += a
         x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
-        # on the drawn video (edges included, as trials.on_video), then video px
-        # (as trials.screen_to_video); plain arrays only: no pandas in threads
-        x0, y0 = mx[tr_c], my[tr_c]
-        onv = (x_c >= x0) & (x_c <= x0 + mw[tr_c]) & (y_c >= y0) & (y_c <= y0 + mh[tr_c])
-        x_c -= x0
-        y_c -= y0
+        onv = on_video_at(x_c, y_c, tr_c, rect)
         code[cand[~onv]] = CODE_OFF_VIDEO
-        cand, x_c, y_c, tr_c = cand[onv], x_c[onv], y_c[onv], tr_c[onv]
-        xv = x_c * sx[tr_c]
-        yv = y_c * sy[tr_c]
+        cand, tr_c = cand[onv], tr_c[onv]
+        xv, yv = to_video_at(x_c[onv], y_c[onv], tr_c, rect, scale)
         g_of = group_of_trial[tr_c]
         for g in np.unique(g_of):  # a loop over the (video, scale) groups in this block
             sel = np.flatnonzero(g_of == g) if len(group_list) > 1 else slice(None)
@@ -286,21 +278,33 @@ def _boundaries(trials: pd.DataFrame) -> np.ndarray:
     return np.unique(np.r_[trials["start_ms"].to_numpy(float), trials["end_ms"].to_numpy(float)])
 
 
+def time_weights(session: Session, fid: np.ndarray,
+                 fixations: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Each sample's own time (ms, cut at trial boundaries) and that plus the carry.
+
+    :func:`aoi_fix.summary.sample_weights` and :func:`~aoi_fix.summary.carry_weights`
+    over the session's trial boundaries; ``fid`` from ``fixation_of_sample``.
+    """
+    from .summary import carry_weights, sample_weights
+
+    t = session.samples["t_ms"].to_numpy(float)
+    bounds = _boundaries(session.trials)
+    w_own = sample_weights(t, fid, fixations, bounds)
+    return w_own, w_own + carry_weights(t, fid, w_own, bounds)
+
+
 def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
               filled: pd.DataFrame, fid: np.ndarray | None = None) -> dict[str, pd.DataFrame]:
     """Per-trial tables from detected fixations and the per-sample placement.
 
     ``fid``: :func:`aoi_fix.summary.fixation_of_sample` of ``fixations``, when known.
     """
-    from .summary import (aoi_summary, fixation_of_sample, fixation_parts,
-                          sample_weights, trial_quality, carry_weights)
+    from .summary import aoi_summary, fixation_of_sample, fixation_parts, trial_quality
 
     t = session.samples["t_ms"].to_numpy(float)
     if fid is None:
         fid = fixation_of_sample(len(t), fixations)
-    bounds = _boundaries(session.trials)
-    w_own = sample_weights(t, fid, fixations, bounds)
-    w = w_own + carry_weights(t, fid, w_own, bounds)
+    w_own, w = time_weights(session, fid, fixations)
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes,
                            w_own=w_own)

@@ -360,9 +360,8 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     """Detection, matching and aggregation for one setting (mirrors ``convert_session``)."""
     from .clean import fill_gaps
     from .detect import detect_filled
-    from .pipeline import _boundaries, _full_interpolation, load_session, match_session
-    from .summary import (aoi_summary, carry_weights, fixation_of_sample, fixation_parts,
-                          sample_weights)
+    from .pipeline import _full_interpolation, load_session, match_session, time_weights
+    from .summary import aoi_summary, fixation_of_sample, fixation_parts
 
     study = setting.study
     if setting.reload:
@@ -405,9 +404,7 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
             xi, yi = _full_interpolation(session.samples)
             cache[codes_key] = match_session(session, x_px=xi, y_px=yi, base=placement)
         matched = cache[codes_key]
-    bounds = _boundaries(session.trials)
-    w_own = sample_weights(t, fid, fixations, bounds)
-    w = w_own + carry_weights(t, fid, w_own, bounds)
+    w_own, w = time_weights(session, fid, fixations)
     n_codes = max((len(n) for n in matched.names_by_trial), default=0)
     parts = fixation_parts(t, fid, matched.trial_idx, w, matched.code, fixations, n_codes,
                            w_own=w_own)

@@ -478,16 +478,9 @@ def screen_to_video(x_px, y_px, trial_idx, trials: pd.DataFrame,
     y_vid = np.full(x.shape, np.nan)
     if len(trials) == 0:
         return x_vid, y_vid
-    vw = _per_trial(trials, stimuli, "width_px")
-    vh = _per_trial(trials, stimuli, "height_px")
-    mx = trials["media_x_px"].to_numpy(float)
-    my = trials["media_y_px"].to_numpy(float)
-    mw = trials["media_width_px"].to_numpy(float)
-    mh = trials["media_height_px"].to_numpy(float)
     sel = idx >= 0
-    i = idx[sel]
-    x_vid[sel] = (x[sel] - mx[i]) * (vw[i] / mw[i])
-    y_vid[sel] = (y[sel] - my[i]) * (vh[i] / mh[i])
+    x_vid[sel], y_vid[sel] = to_video_at(x[sel], y[sel], idx[sel], media_rect(trials),
+                                         video_scale(trials, stimuli))
     return x_vid, y_vid
 
 
@@ -509,12 +502,36 @@ def on_video(x_px, y_px, trial_idx, trials: pd.DataFrame) -> np.ndarray:
     out = np.zeros(x.shape, dtype=bool)
     if len(trials) == 0:
         return out
-    mx = trials["media_x_px"].to_numpy(float)
-    my = trials["media_y_px"].to_numpy(float)
-    mw = trials["media_width_px"].to_numpy(float)
-    mh = trials["media_height_px"].to_numpy(float)
     sel = idx >= 0
-    i = idx[sel]
-    xs, ys = x[sel], y[sel]
-    out[sel] = (xs >= mx[i]) & (xs <= mx[i] + mw[i]) & (ys >= my[i]) & (ys <= my[i] + mh[i])
+    out[sel] = on_video_at(x[sel], y[sel], idx[sel], media_rect(trials))
     return out
+
+
+# Per-trial arrays and the two placement expressions, shared by on_video /
+# screen_to_video and by the block-wise matching in pipeline.match_session
+# (which takes the arrays out once: no pandas inside its threads).
+
+def media_rect(trials: pd.DataFrame) -> tuple[np.ndarray, ...]:
+    """``(x, y, width, height)`` of each trial's drawn video, display px."""
+    return tuple(trials[c].to_numpy(float) for c in
+                 ("media_x_px", "media_y_px", "media_width_px", "media_height_px"))
+
+
+def video_scale(trials: pd.DataFrame, stimuli: Mapping[str, Stimulus]
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Video px per display px of each trial, horizontally and vertically."""
+    _, _, mw, mh = media_rect(trials)
+    return (_per_trial(trials, stimuli, "width_px") / mw,
+            _per_trial(trials, stimuli, "height_px") / mh)
+
+
+def on_video_at(x, y, i, rect) -> np.ndarray:
+    """Display points on the drawn video of trial rows ``i`` (edges included)."""
+    mx, my, mw, mh = rect
+    return (x >= mx[i]) & (x <= mx[i] + mw[i]) & (y >= my[i]) & (y <= my[i] + mh[i])
+
+
+def to_video_at(x, y, i, rect, scale) -> tuple[np.ndarray, np.ndarray]:
+    """Display points of trial rows ``i`` in video px."""
+    mx, my, _, _ = rect
+    return (x - mx[i]) * scale[0][i], (y - my[i]) * scale[1][i]

@@ -144,11 +144,53 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
     >>> fixation_average(f, fx, window_ms=20, interval_ms=10)[0].tolist()
     [1.0, 2.0, 3.0, 9.0]
     """
-    x = filled["x_px"].to_numpy(dtype=float).copy()
-    y = filled["y_px"].to_numpy(dtype=float).copy()
+    x_in = filled["x_px"].to_numpy(dtype=float)
+    y_in = filled["y_px"].to_numpy(dtype=float)
+    x, y = x_in.copy(), y_in.copy()
     n = len(x)
     if n == 0 or len(fixations) == 0 or window_ms <= 0:
         return x, y
+    from ._chunks import map_blocks
+    from .summary import fixation_of_sample
+
+    if fid is None:
+        fid = fixation_of_sample(n, fixations)
+    st = fixations["start_row"].to_numpy(np.int64)
+    en = fixations["end_row"].to_numpy(np.int64)
+    h = max(0, int(round(window_ms / (2.0 * interval_ms))))
+
+    def block(a: int, b: int) -> None:  # rows a..b-1; reads the input, writes x, y there
+        i = np.flatnonzero(fid[a:b] >= 0)  # fixation samples, in order
+        if len(i) == 0:
+            return
+        f = fid[a:b][i]
+        i += a
+        lo = i - h
+        np.maximum(lo, st[f], out=lo)
+        hi = i + (h + 1)
+        np.minimum(hi, en[f], out=hi)
+        # every window lies in base..top-1: prefix sums over that stretch only
+        base, top = max(0, a - h), min(n, b + h + 1)
+        lo -= base
+        hi -= base
+        xs, ys = x_in[base:top], y_in[base:top]
+        ok = np.isfinite(xs)
+        ok &= np.isfinite(ys)
+        cn = np.zeros(top - base + 1, dtype=np.int64)
+        np.cumsum(ok, out=cn[1:])
+        cnt = cn[hi] - cn[lo]
+        good = cnt > 0
+        i, lo, hi, cnt = i[good], lo[good], hi[good], cnt[good]
+        c = np.zeros(top - base + 1)
+        for v, out in ((xs, x), (ys, y)):  # two coordinates
+            np.cumsum(np.where(ok, v, 0.0), out=c[1:])
+            m = c[hi]
+            m -= c[lo]
+            m /= cnt
+            out[i] = m
+
+    map_blocks(block, n)
+    return x, y
     from .summary import fixation_of_sample
 
     if fid is None:

@@ -265,14 +265,30 @@ def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.nda
     >>> per_trial_sums(np.array([-1, 0, 0, 1]), 2, None, np.array([1., 2, 3, 4]))
     [array([2, 1]), array([5., 4.])]
     """
-    key = np.maximum(trial_idx, -1).astype(np.int64)
-    key += 1
-    out = []
-    for v in values:  # a few columns
-        if v is None:
-            out.append(np.bincount(key, minlength=n_trials + 1)[1:n_trials + 1])
-        else:
-            out.append(np.bincount(key, weights=v, minlength=n_trials + 1)[1:n_trials + 1])
+    from ._chunks import map_blocks
+
+    m = n_trials + 1
+    exact = [k for k, v in enumerate(values)
+             if v is None or np.asarray(v).dtype.kind in "biu"]
+
+    def block(a: int, b: int) -> list[np.ndarray]:  # counts add up exactly in any order
+        key = np.maximum(trial_idx[a:b], -1).astype(np.int64)
+        key += 1
+        return [np.bincount(key, minlength=m) if values[k] is None
+                else np.bincount(key, weights=values[k][a:b], minlength=m) for k in exact]
+
+    out: list = [None] * len(values)
+    if exact:
+        per_block = map_blocks(block, len(trial_idx))
+        for j, k in enumerate(exact):
+            total = sum((p[j] for p in per_block), np.zeros(m))
+            out[k] = total[1:m].astype(np.int64) if values[k] is None else total[1:m]
+    rest = [k for k in range(len(values)) if out[k] is None]
+    if rest:  # float sums in one pass, so that rounding does not depend on blocks
+        key = np.maximum(trial_idx, -1).astype(np.int64)
+        key += 1
+        for k in rest:
+            out[k] = np.bincount(key, weights=values[k], minlength=m)[1:m]
     return out
 
 

@@ -178,3 +178,33 @@ def test_savgol_all_lost():
     got = smooth_savgol(np.array([0.0, 1.0]), v, np.array([-1, -1]), window_ms=20,
                         interval_ms=1)
     assert np.isnan(got).all()
+
+
+@pytest.mark.parametrize("block", [1, 7, 64, 1 << 17])
+def test_fixation_average_equals_the_window_mean_by_hand(monkeypatch, block):
+    # Reference: the docstring's definition written as a plain loop over samples
+    # (mean of the finite positions within h samples either side, cut at the
+    # fixation's ends); the block size of the vectorised version must not matter.
+    from aoi_fix import _chunks
+    from aoi_fix.clean import fixation_average
+
+    rng = np.random.default_rng(11)
+    n = 500
+    x, y = rng.normal(size=n), rng.normal(size=n)
+    x[rng.random(n) < 0.1] = np.nan
+    y[rng.random(n) < 0.05] = np.nan
+    fx = pd.DataFrame({"start_row": [0, 40, 41, 200, 495], "end_row": [30, 41, 190, 480, 500]})
+    interval, window = 4.0, 40.0
+    h = 5
+    want_x, want_y = x.copy(), y.copy()
+    for s, e in zip(fx["start_row"], fx["end_row"]):
+        for i in range(s, e):
+            lo, hi = max(s, i - h), min(e, i + h + 1)
+            ok = np.isfinite(x[lo:hi]) & np.isfinite(y[lo:hi])
+            if ok.any():
+                want_x[i], want_y[i] = x[lo:hi][ok].mean(), y[lo:hi][ok].mean()
+    monkeypatch.setattr(_chunks, "BLOCK", block)
+    got_x, got_y = fixation_average(pd.DataFrame({"x_px": x, "y_px": y}), fx,
+                                    window_ms=window, interval_ms=interval)
+    np.testing.assert_allclose(got_x, want_x, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(got_y, want_y, rtol=1e-12, atol=1e-12)

@@ -56,7 +56,7 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
     valid = samples["valid"].to_numpy(dtype=bool)
     n = len(t)
     filled = np.zeros(n, dtype=bool)
-    segment = np.full(n, -1, dtype=np.int64)
+    segment = np.full(n, -1, dtype=np.int32)
     vi = np.flatnonzero(valid)
     if len(vi):
         missing_ms = t[vi[1:]] - t[vi[:-1]] - interval_ms

@@ -222,7 +222,7 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     else:
         trial_idx = assign_trials(t, trials)
         frame = frame_index(t, trial_idx, trials, study.stimuli)
-    code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int64)
+    code = np.full(len(t), CODE_NOT_IN_TRIAL, dtype=np.int32)
     margin_screen_px = geometry.deg_to_px(study.aois.margin_deg, study.display)
     # trials showing the same video at the same scale share one vectorised call
     stimuli_with_aois = set(session.aois.stimuli())

@@ -44,7 +44,7 @@ def fixation_of_sample(n: int, fixations: pd.DataFrame) -> np.ndarray:
     [-1, 0, 0, -1, 1, 1, -1]
     """
     if len(fixations) == 0 or n == 0:
-        return np.full(n, -1, dtype=np.int64)
+        return np.full(n, -1, dtype=np.int32)
     starts = fixations["start_row"].to_numpy(np.int64)
     ends = fixations["end_row"].to_numpy(np.int64)
     keep = ends > starts
@@ -56,7 +56,7 @@ def fixation_of_sample(n: int, fixations: pd.DataFrame) -> np.ndarray:
     inside = np.cumsum(mark[:n], dtype=np.int32) > 0
     mark[:] = 0
     mark[starts] = 1
-    fid = np.cumsum(mark[:n], dtype=np.int64)  # fixations started so far
+    fid = np.cumsum(mark[:n], dtype=np.int32)  # fixations started so far (int32 fits)
     fid -= 1
     fid[~inside] = -1
     if len(rows) < len(keep):  # empty fixations were skipped: back to table rows

@@ -350,8 +350,9 @@ def placement_sorted(t_ms: np.ndarray, trials: pd.DataFrame,
     """
     t = np.asarray(t_ms, dtype=float)
     n = len(t)
-    trial_idx = np.full(n, -1, dtype=np.int64)
-    frame = np.full(n, -1, dtype=np.int64)
+    # int32: half the memory of int64 per sample (row and frame numbers fit)
+    trial_idx = np.full(n, -1, dtype=np.int32)
+    frame = np.full(n, -1, dtype=np.int32)
     if len(trials) == 0 or n == 0:
         return trial_idx, frame
     fps = _per_trial(trials, stimuli, "fps")

@@ -158,7 +158,7 @@ def main(argv=None) -> int:
     print("\nratios of marginal cost per sample (targets in brackets):")
     print(f"  fixations (I-VT) / pyarrow read_csv : {marg('ivt') / marg('read'):.2f}  [<= 2.0]")
     print(f"  convert / pyarrow read_csv          : {marg('convert') / marg('read'):.2f}  "
-          "[<= 2.0-2.5]")
+          "[<= 2.0]")
     print(f"  fixations I-DT / I-VT               : {marg('idt') / marg('ivt'):.2f}  [<= 1.5]")
     print(f"  12-setting sweep (-j {args.jobs}) / convert  : {marg('sweep') / marg('convert'):.2f}  "
           "[<= 3]")

@@ -191,34 +191,3 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
 
     map_blocks(block, n)
     return x, y
-    from .summary import fixation_of_sample
-
-    if fid is None:
-        fid = fixation_of_sample(n, fixations)
-    st = fixations["start_row"].to_numpy(np.int64)
-    en = fixations["end_row"].to_numpy(np.int64)
-    i = np.flatnonzero(fid >= 0)  # fixation samples, in order
-    f = fid[i]
-    h = max(0, int(round(window_ms / (2.0 * interval_ms))))
-    lo = i - h
-    np.maximum(lo, st[f], out=lo)
-    hi = i + (h + 1)
-    np.minimum(hi, en[f], out=hi)
-    del f
-    ok = np.isfinite(x)
-    ok &= np.isfinite(y)
-    cn = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(ok, out=cn[1:])
-    cnt = cn[hi] - cn[lo]
-    del cn
-    good = cnt > 0
-    i, lo, hi, cnt = i[good], lo[good], hi[good], cnt[good]
-    for v in (x, y):  # two coordinates
-        c = np.zeros(n + 1)
-        np.cumsum(np.where(ok, v, 0.0), out=c[1:])
-        m = c[hi]
-        m -= c[lo]
-        del c
-        m /= cnt
-        v[i] = m
-    return x, y

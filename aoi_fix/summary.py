@@ -271,9 +271,13 @@ def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.nda
     exact = [k for k, v in enumerate(values)
              if v is None or np.asarray(v).dtype.kind in "biu"]
 
-    def block(a: int, b: int) -> list[np.ndarray]:  # counts add up exactly in any order
-        key = np.maximum(trial_idx[a:b], -1).astype(np.int64)
+    def bins(ti: np.ndarray) -> np.ndarray:  # trial + 1; every sample outside trials in bin 0
+        key = np.maximum(ti, -1).astype(np.int64)
         key += 1
+        return key
+
+    def block(a: int, b: int) -> list[np.ndarray]:  # counts add up exactly in any order
+        key = bins(trial_idx[a:b])
         return [np.bincount(key, minlength=m) if values[k] is None
                 else np.bincount(key, weights=values[k][a:b], minlength=m) for k in exact]
 
@@ -285,8 +289,7 @@ def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.nda
             out[k] = total[1:m].astype(np.int64) if values[k] is None else total[1:m]
     rest = [k for k in range(len(values)) if out[k] is None]
     if rest:  # float sums in one pass, so that rounding does not depend on blocks
-        key = np.maximum(trial_idx, -1).astype(np.int64)
-        key += 1
+        key = bins(trial_idx)
         for k in rest:
             out[k] = np.bincount(key, weights=values[k], minlength=m)[1:m]
     return out

@@ -338,8 +338,9 @@ def placement_sorted(t_ms: np.ndarray, trials: pd.DataFrame,
 
     Sample times of a recording only increase, so each trial is one slice of
     the samples, found by binary search; the loop runs over trials and each
-    slice is filled with one vectorised expression.  Same results as the two
-    general functions (tested), with no per-sample temporaries.
+    slice is filled with one vectorised expression.  Same values as the two
+    general functions (tested), as int32 (half their memory), with no
+    per-sample temporaries.
 
     >>> from aoi_fix.config import Stimulus
     >>> tr = pd.DataFrame({"stimulus": ["a"], "start_ms": [1000.0], "end_ms": [1100.0]})

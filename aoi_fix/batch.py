@@ -339,7 +339,10 @@ def _convert_one(task: SessionTask) -> tuple[str, str]:
     if not task.force and _up_to_date(task, fp, with_checks):
         return "skipped", "inputs and parameters unchanged"
     session = _load(study, inputs, bids)
-    tables = convert_session(session)
+    same = {role: fp["inputs_sha256"][role] for role, p in session.paths.items()
+            if role in inputs and Path(inputs[role]).resolve() == Path(p).resolve()
+            and role in fp["inputs_sha256"]}  # hashed once, for the fingerprint
+    tables = convert_session(session, input_sha256=same)
     if task.participant is not None:
         from .cohort import add_cohort_tables
         tables = add_cohort_tables(tables, session=task.session, quality=study.quality,

@@ -18,7 +18,8 @@ import pandas as pd
 
 from .errors import OutputError
 
-__all__ = ["AtomicOutputs", "write_table", "sha256_file", "table_suffix", "read_table"]
+__all__ = ["AtomicOutputs", "write_table", "sha256_file", "sha256_soon", "table_suffix",
+           "read_table"]
 
 RESEARCH_NOTICE = ("aoi_fix is a research tool, not a diagnostic device; any clinical "
                    "decision belongs to qualified clinicians under local rules.")
@@ -34,6 +35,26 @@ def sha256_file(path: str | Path) -> str:
         for block in iter(lambda: fh.read(1 << 20), b""):
             h.update(block)
     return h.hexdigest()
+
+
+def sha256_soon(paths: dict[str, str | Path]):
+    """Start hashing files on a background thread; a future of ``{key: sha256}``.
+
+    ``hashlib`` releases the GIL on large blocks, so hashing the inputs for the
+    manifest overlaps with detection and matching instead of adding to them.
+
+    >>> import tempfile, pathlib
+    >>> f = pathlib.Path(tempfile.mkdtemp()) / "a.txt"
+    >>> _ = f.write_bytes(b"abc")
+    >>> sha256_soon({"a": f}).result()["a"][:16]  # FIPS 180-2 test vector "abc"
+    'ba7816bf8f01cfea'
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="aoi_fix-sha256")
+    future = pool.submit(lambda: {k: sha256_file(p) for k, p in paths.items()})
+    pool.shutdown(wait=False)
+    return future
 
 
 def _to_parquet_frame(df: pd.DataFrame) -> pd.DataFrame:

@@ -11,7 +11,7 @@ import pandas as pd
 from .config import Study, load_study
 from .detect import detect_fixations
 from .errors import OutputError
-from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_file, table_suffix
+from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_file, sha256_soon, table_suffix
 from .samples import nominal_interval_ms, read_samples
 
 __all__ = ["fixations_table", "fixations_from_file", "FIXATION_OUTPUT_COLUMNS", "convert",
@@ -229,12 +229,15 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     names_by_trial = []
     group_of_trial = np.full(len(trials), -1, dtype=np.int64)
     groups: dict[tuple, int] = {}
-    for k in range(len(trials)):  # a loop over trials (no sample work)
-        stim = trials["stimulus"].iat[k]
-        names = session.aois.names(stim, study.aois.priority) \
-            if stim in stimuli_with_aois else ()
-        names_by_trial.append(tuple(names))
-        scale = study.stimuli[stim].width_px / trials["media_width_px"].iat[k]
+    names_of: dict[str, tuple[str, ...]] = {}
+    for k, (stim, media_w) in enumerate(zip(trials["stimulus"].tolist(),
+                                            trials["media_width_px"].tolist())):
+        # a loop over trials (no sample work)
+        if stim not in names_of:
+            names_of[stim] = tuple(session.aois.names(stim, study.aois.priority)) \
+                if stim in stimuli_with_aois else ()
+        names_by_trial.append(names_of[stim])
+        scale = study.stimuli[stim].width_px / media_w
         key = (stim, float(margin_screen_px[0]) * scale)
         group_of_trial[k] = groups.setdefault(key, len(groups))
     group_list = list(groups)
@@ -259,9 +262,11 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         code[cand[~onv]] = CODE_OFF_VIDEO
         cand, tr_c = cand[onv], tr_c[onv]
         xv, yv = to_video_at(x_c[onv], y_c[onv], tr_c, rect, scale)
-        g_of = group_of_trial[tr_c]
-        for g in np.unique(g_of):  # a loop over the (video, scale) groups in this block
-            sel = np.flatnonzero(g_of == g) if len(group_list) > 1 else slice(None)
+        g_of = group_of_trial[tr_c] if len(group_list) > 1 else None
+        present = [0] if g_of is None else \
+            np.flatnonzero(np.bincount(g_of, minlength=len(group_list))).tolist()
+        for g in present:  # a loop over the (video, scale) groups in this block
+            sel = slice(None) if len(present) == 1 else np.flatnonzero(g_of == g)
             stim, margin_vid = group_list[g]
             r = cand[sel]
             if stim not in stimuli_with_aois:
@@ -323,9 +328,8 @@ def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
     tr_label = np.where(parts["trial_row"].to_numpy() >= 0,
                         trials["trial"].to_numpy(object)[np.maximum(parts["trial_row"].to_numpy(), 0)]
                         if len(trials) else None, None)
-    aoi_label = []
-    for row, c in zip(parts["trial_row"].to_numpy(), parts["code"].to_numpy()):
-        aoi_label.append(matched.names_by_trial[row][c] if row >= 0 and c >= 0 else None)
+    aoi_label = _aoi_labels(matched.names_by_trial, parts["trial_row"].to_numpy(),
+                            parts["code"].to_numpy())
     fix_table = fixations_table(parts, trial=pd.array(tr_label, dtype="string"),
                                 aoi=pd.array(aoi_label, dtype="string"))
     summary = aoi_summary(trials, matched.names_by_trial, matched.trial_idx, matched.code,
@@ -337,6 +341,25 @@ def summarise(session: Session, matched: Matched, fixations: pd.DataFrame,
                             min_valid_fraction=session.study.quality.min_valid_fraction)
     return {"fixations": fix_table, "aoi_summary": summary, "trial_quality": quality,
             "_parts": parts, "_fid": fid, "_w": w}
+
+
+def _aoi_labels(names_by_trial: list[tuple[str, ...]], trial_row: np.ndarray,
+                code: np.ndarray) -> np.ndarray:
+    """AOI name of each (trial row, code) pair; None outside trials or AOIs.
+
+    >>> _aoi_labels([("eyes", "mouth"), ("toy",)], np.array([0, 1, -1, 0]),
+    ...             np.array([1, 0, 0, -1])).tolist()
+    ['mouth', 'toy', None, None]
+    """
+    sizes = np.array([len(n) for n in names_by_trial], dtype=np.int64)
+    flat = np.array([None] + [a for n in names_by_trial for a in n], dtype=object)
+    first = np.concatenate([[1], 1 + np.cumsum(sizes)[:-1]]) if len(sizes) else sizes
+    row = np.asarray(trial_row, dtype=np.int64)
+    c = np.asarray(code, dtype=np.int64)
+    ok = (row >= 0) & (c >= 0)
+    where = np.zeros(len(row), dtype=np.int64)
+    where[ok] = first[row[ok]] + c[ok]
+    return flat[where]
 
 
 def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
@@ -354,10 +377,12 @@ def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
     n_all, n_valid, n_fill, n_lost, n_fix = (
         a.astype(int) for a in per_trial_sums(matched.trial_idx, n_tr, None, valid, fill,
                                               lost, in_fix))
-    per_trial = [{"trial": str(session.trials["trial"].iat[k]), "samples": int(n_all[k]),
-                  "valid": int(n_valid[k]), "gap_filled": int(n_fill[k]),
-                  "lost": int(n_lost[k]), "in_fixations": int(n_fix[k])}
-                 for k in range(n_tr)]
+    per_trial = [{"trial": str(name), "samples": a, "valid": v, "gap_filled": f, "lost": lo,
+                  "in_fixations": fx}
+                 for name, a, v, f, lo, fx in zip(session.trials["trial"].tolist(),
+                                                  n_all.tolist(), n_valid.tolist(),
+                                                  n_fill.tolist(), n_lost.tolist(),
+                                                  n_fix.tolist())]
     return {
         "samples": {
             "total": int(len(t)), "valid": int(valid.sum()), "gap_filled": int(fill.sum()),
@@ -377,8 +402,12 @@ def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
     }
 
 
-def convert_session(session: Session, *, matched: Matched | None = None) -> dict:
+def convert_session(session: Session, *, matched: Matched | None = None,
+                    input_sha256=None) -> dict:
     """Detection, matching and summaries for one loaded session (nothing written).
+
+    ``input_sha256``: the inputs' hashes for the manifest, as a dict or a future
+    of one (:func:`aoi_fix.output.sha256_soon`); computed here when omitted.
 
     Returns a dict of the output tables plus ``manifest`` (a JSON-able dict).
     """
@@ -434,8 +463,7 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
         tables["check_quality"] = check_table
     manifest = {
         "tool": "aoi_fix", "version": __version__, "notice": RESEARCH_NOTICE,
-        "inputs": {k: {"path": str(p), "sha256": sha256_file(p)}
-                   for k, p in session.paths.items()},
+        "inputs": _inputs_with_sha256(session.paths, input_sha256),
         "parameters": study.to_dict(),
         "detection_used": {
             "nominal_interval_ms": session.interval_ms,
@@ -448,6 +476,16 @@ def convert_session(session: Session, *, matched: Matched | None = None) -> dict
     }
     tables["manifest"] = manifest
     return tables
+
+
+def _inputs_with_sha256(paths: dict[str, Path], sha256=None) -> dict:
+    """``{role: {"path", "sha256"}}`` for the manifest; ``sha256`` a dict or a future."""
+    if sha256 is None:
+        sha256 = {}
+    elif not isinstance(sha256, dict):
+        sha256 = sha256.result()
+    return {k: {"path": str(p), "sha256": sha256.get(k) or sha256_file(p)}
+            for k, p in paths.items()}
 
 
 OUTPUT_TABLES = ("fixations", "aoi_summary", "trial_quality")
@@ -527,7 +565,7 @@ def convert(samples, *, study, trials, aois, checks=None, out_dir=None, fmt: str
         sid = session_from_out_dir(out_dir, session)
         info = participant_of_sessions(read_participants(participants), [sid])[sid]
     loaded = load_session(samples, study, trials, aois, checks, overrides=overrides)
-    tables = convert_session(loaded)
+    tables = convert_session(loaded, input_sha256=sha256_soon(loaded.paths))
     if info is not None:
         from .cohort import add_cohort_tables
         tables = add_cohort_tables(tables, session=sid, participant=info["participant"],

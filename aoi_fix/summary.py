@@ -259,39 +259,46 @@ def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
 def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.ndarray]:
     """Per trial: the sum of each of ``values`` over its samples (None = sample count).
 
-    Samples outside trials (-1) go to a bin that is dropped, so no column is
-    masked or copied.
+    Samples outside trials (-1) are not counted.  The recording is cut into
+    runs of equal ``trial_idx`` (a trial's samples are one or a few runs, as
+    samples are in time order), each value is summed per run with one
+    ``np.add.reduceat`` (integers and booleans as int64, so counts are exact),
+    and the runs are added up per trial.  No full-length temporary is made
+    besides the run boundaries, and the result does not depend on blocks or
+    threads.
 
     >>> per_trial_sums(np.array([-1, 0, 0, 1]), 2, None, np.array([1., 2, 3, 4]))
     [array([2, 1]), array([5., 4.])]
+    >>> per_trial_sums(np.array([0, 1, 0]), 2, np.array([True, True, False]))
+    [array([1, 1])]
     """
-    from ._chunks import map_blocks
-
-    m = n_trials + 1
-    exact = [k for k, v in enumerate(values)
-             if v is None or np.asarray(v).dtype.kind in "biu"]
-
-    def bins(ti: np.ndarray) -> np.ndarray:  # trial + 1; every sample outside trials in bin 0
-        key = np.maximum(ti, -1).astype(np.int64)
-        key += 1
-        return key
-
-    def block(a: int, b: int) -> list[np.ndarray]:  # counts add up exactly in any order
-        key = bins(trial_idx[a:b])
-        return [np.bincount(key, minlength=m) if values[k] is None
-                else np.bincount(key, weights=values[k][a:b], minlength=m) for k in exact]
-
-    out: list = [None] * len(values)
-    if exact:
-        per_block = map_blocks(block, len(trial_idx))
-        for j, k in enumerate(exact):
-            total = sum((p[j] for p in per_block), np.zeros(m))
-            out[k] = total[1:m].astype(np.int64) if values[k] is None else total[1:m]
-    rest = [k for k in range(len(values)) if out[k] is None]
-    if rest:  # float sums in one pass, so that rounding does not depend on blocks
-        key = bins(trial_idx)
-        for k in rest:
-            out[k] = np.bincount(key, weights=values[k], minlength=m)[1:m]
+    ti = np.asarray(trial_idx)
+    n = len(ti)
+    if n == 0:
+        return [np.zeros(n_trials, dtype=np.int64 if v is None or np.asarray(v).dtype.kind
+                         in "biu" else float) for v in values]
+    starts = np.flatnonzero(ti[1:] != ti[:-1])
+    starts += 1
+    starts = np.concatenate([np.zeros(1, dtype=starts.dtype), starts])
+    run_trial = ti[starts].astype(np.int64)
+    keep = run_trial >= 0
+    run_trial = run_trial[keep]
+    out = []
+    for v in values:
+        if v is None:
+            per_run = np.diff(np.append(starts, n))
+            exact = True
+        else:
+            a = np.asarray(v)
+            exact = a.dtype.kind in "biu"
+            per_run = np.add.reduceat(a, starts, dtype=np.int64 if exact else np.float64)
+        if exact:
+            total = np.zeros(n_trials, dtype=np.int64)
+            np.add.at(total, run_trial, per_run[keep].astype(np.int64))
+        else:
+            total = np.zeros(n_trials)
+            np.add.at(total, run_trial, per_run[keep])
+        out.append(total)
     return out
 
 

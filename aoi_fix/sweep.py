@@ -576,8 +576,8 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
         any input is read.
     """
     from . import __version__
-    from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_file, table_suffix
-    from .pipeline import load_session
+    from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_soon, table_suffix
+    from .pipeline import _inputs_with_sha256, load_session
 
     if fmt not in ("csv", "parquet"):
         raise UsageError(f"--format: found {fmt!r}, expected csv or parquet")
@@ -600,6 +600,10 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
     keys = list(settings[0].values)
 
     session = load_session(samples, base, trials, aois, checks)
+    inputs = dict(session.paths)
+    if not isinstance(study, Study):
+        inputs = {"study": Path(study), **inputs}
+    input_sha256 = sha256_soon(inputs)  # on a thread while the settings run
     placement = _placement(session)
     n_jobs = min(jobs, len(settings))
     log.info("sweep: %d settings, %d worker(s)", len(settings), n_jobs)
@@ -622,9 +626,6 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
     max_range = base.sweep.max_range_pct
     stability = _stability(summary, max_range)
 
-    inputs = dict(session.paths)
-    if not isinstance(study, Study):
-        inputs = {"study": Path(study), **inputs}
     per_key = {k: [] for k in keys}
     for s in settings:
         for k in keys:
@@ -633,8 +634,7 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
     manifest = {
         "tool": "aoi_fix", "version": __version__, "notice": RESEARCH_NOTICE,
         "command": "sweep",
-        "inputs": {k: {"path": str(p), "sha256": sha256_file(p)}
-                   for k, p in inputs.items()},
+        "inputs": _inputs_with_sha256(inputs, input_sha256),
         "overrides": list(overrides),
         "grid": {k: [list(v) if isinstance(v, tuple) else v for v in per_key[k]]
                  for k in keys},

@@ -17,7 +17,10 @@ An empty input gives an empty table with these columns and dtypes.
 
 from __future__ import annotations
 
+import bisect
 import logging
+import math
+import threading
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -137,14 +140,6 @@ def _window_bounds(seg: np.ndarray, h: int, rows: np.ndarray):
     else:
         lo, hi = rows.copy(), rows.copy()
     return lo, hi, ok
-
-
-def _segment_end_of_rows(seg: np.ndarray) -> np.ndarray:
-    """One past the last row of each sample's segment (-1 for lost samples)."""
-    s0, s1 = _segment_runs(seg)
-    end = np.full(len(seg), -1, dtype=np.int64)
-    end[seg >= 0] = np.repeat(s1, s1 - s0)
-    return end
 
 
 def _prepared(samples, display, window_ms, interval_ms, smoothing, smoothing_window_ms):
@@ -462,26 +457,325 @@ def _refine_edges(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.nda
 
 # --------------------------------------------------------------------------- I-DT
 
-def _rolling_dispersion(ax: np.ndarray, ay: np.ndarray, size: int) -> np.ndarray:
-    """``(max - min)`` of ``ax`` plus that of ``ay`` over ``[i, i + size)`` for every i.
+#: Samples per block of the conversion to degrees and the initial-window pass
+#: (the block's arrays stay in cache; with per-thread scratch buffers, no fresh
+#: pages per block).
+_IDT_BLOCK = 1 << 15
+#: Candidate starts grown together, column by column (bounds the temporaries).
+_IDT_BATCH = 1 << 15
+#: Another round of batch growth runs while at least this many new candidate
+#: starts turn up; the few left are followed one fixation at a time.
+_IDT_MIN_ROUND = 16
+#: Below this many rows still growing, column-by-column growth hands the rest
+#: to per-row growth over exponentially larger chunks.
+_IDT_MIN_ACTIVE = 64
 
-    O(n) rolling extrema (van Herk/Gil-Werman, via ``scipy.ndimage``); the
-    last ``size - 1`` positions (windows past the end) are +inf.
+
+def _deg_rows(x: np.ndarray, y: np.ndarray, display: "Display") -> np.ndarray:
+    """Per-axis visual angles (deg) as one ``(2, n)`` array, in blocks.
+
+    Lost samples keep whatever they convert to (NaN): no window includes one.
     """
-    from scipy.ndimage import maximum_filter1d, minimum_filter1d
+    from ._chunks import map_blocks
 
-    n = len(ax)
-    shift = size // 2  # the filters centre the window: value i + shift covers [i, i + size)
-    out = np.full(n, np.inf)
-    m = n - size + 1
-    if m <= 0:
-        return out
-    d = maximum_filter1d(ax, size=size, mode="nearest")[shift:shift + m]
-    d -= minimum_filter1d(ax, size=size, mode="nearest")[shift:shift + m]
-    d += maximum_filter1d(ay, size=size, mode="nearest")[shift:shift + m]
-    d -= minimum_filter1d(ay, size=size, mode="nearest")[shift:shift + m]
-    out[:m] = d
-    return out
+    axy = np.empty((2, len(x)))
+
+    def block(a, b):
+        axy[0, a:b], axy[1, a:b] = geometry.px_to_deg(x[a:b], y[a:b], display)
+
+    map_blocks(block, len(x), size=_IDT_BLOCK)
+    return axy
+
+
+def _first_at_or_after(t: np.ndarray, target: np.ndarray, guess: np.ndarray) -> np.ndarray:
+    """``np.searchsorted(t, target, side="left")`` for sorted ``t``, checked at a guess.
+
+    The guess is right (``t[g-1] < target <= t[g]``) for almost every row of a
+    regular clock; only the others are searched.
+    """
+    n = len(t)
+    g = np.clip(guess, 0, n)
+    good = (g >= n) | (np.take(t, g, mode="clip") >= target)
+    good &= (g <= 0) | (np.take(t, g - 1, mode="clip") < target)
+    if not good.all():
+        bad = np.flatnonzero(~good)
+        g[bad] = np.searchsorted(t, target[bad], side="left")
+    return g
+
+
+def _window_end(t: np.ndarray, rows: np.ndarray, min_fixation_ms: float, interval_ms: float,
+                eps: float, k0: int) -> np.ndarray:
+    """One past the last row of the shortest window starting at each of ``rows``.
+
+    The first ``j`` with ``t[j-1] >= t[i] + min - interval`` (never before ``i + 1``).
+    """
+    target = t[rows] + min_fixation_ms
+    target -= interval_ms
+    target -= eps
+    last = _first_at_or_after(t, target, rows + k0)
+    np.maximum(last, rows, out=last)
+    last += 1
+    return last
+
+
+def _segment_end(s0: np.ndarray, s1: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """One past the last row of the segment of each of ``rows`` (rows in a segment)."""
+    return s1[np.searchsorted(s0, rows, side="right") - 1]
+
+
+class _Scratch(threading.local):
+    """Per-thread scratch arrays, reused from block to block.
+
+    Fresh block-sized temporaries may come from the operating system each
+    time (page faults); reusing a few buffers keeps the work in cache.
+    """
+
+    def get(self, name: str, shape: tuple, dtype=float) -> np.ndarray:
+        size = math.prod(shape)
+        buf = self.__dict__.get(name)
+        if buf is None or buf.size < size or buf.dtype != dtype:
+            buf = self.__dict__[name] = np.empty(max(size, 1), dtype=dtype)
+        return buf[:size].reshape(shape)
+
+
+def _extrema_spans(axy, a, hi, sizes, scratch):
+    """For each window size ``s`` of ``sizes`` (ascending): ``s``, and the per-axis
+    max and min over ``[i, i + w)`` for ``i`` from ``a`` with ``w`` the largest power
+    of two ``<= s``, and ``w`` (doubling: a span of 2w is two spans of w)."""
+    mx = mn = axy[:, a:hi]
+    length, w, k = hi - a, 1, 0
+    for s in sizes:
+        while 2 * w <= s:
+            length -= w
+            nx = scratch.get(f"mx{k % 2}", (2, length))
+            nn = scratch.get(f"mn{k % 2}", (2, length))
+            np.maximum(mx[:, :length], mx[:, w:w + length], out=nx)
+            np.minimum(mn[:, :length], mn[:, w:w + length], out=nn)
+            mx, mn, w, k = nx, nn, 2 * w, k + 1
+        yield s, mx, mn, w
+
+
+def _ok_starts(axy, t, seg, s0, s1, a, b, thr, min_fixation_ms, interval_ms, eps, k0,
+               scratch):
+    """Starts in ``[a, b)`` whose initial window lies in one segment and has D <= thr.
+
+    A window of ``s`` samples is covered by two overlapping spans of the
+    largest power of two ``w <= s``, whose extrema come from doubling
+    (exact: only max and min).  Returns the passing starts, and the first
+    start of each run of them with its window's per-axis maxima and minima
+    (``(2, k)`` each), from where its growth carries on.
+    """
+    n = len(t)
+    nb = b - a
+    target = scratch.get("target", (nb,))
+    np.add(t[a:b], min_fixation_ms, out=target)
+    target -= interval_ms
+    target -= eps
+    uniform = b + k0 <= n
+    if uniform:  # is the usual window end (row i + k0) right for every start of the block?
+        good = scratch.get("good", (nb,), bool)
+        np.greater_equal(t[a + k0:b + k0], target, out=good)
+        if k0 > 0:
+            before = scratch.get("before", (nb,), bool)
+            np.less(t[a + k0 - 1:b + k0 - 1], target, out=before)
+            good &= before
+        uniform = bool(good.all())
+    pre = scratch.get("pre", (nb,), bool)  # the window lies in the start's segment
+    np.greater_equal(seg[a:b], 0, out=pre)
+    if uniform:
+        s = k0 + 1
+        # a start less than s rows before its segment's end has no full window
+        ends = s1[np.searchsorted(s1, a, side="right"):np.searchsorted(s1, b + s - 1)]
+        lo = np.maximum(ends - (s - 1), a)
+        cnt = np.maximum(np.minimum(ends, b) - lo, 0)
+        if cnt.sum():
+            pre[np.repeat(lo - a - np.cumsum(cnt) + cnt, cnt) + np.arange(cnt.sum())] = False
+        if not pre.any():
+            e = np.zeros(0, dtype=np.int64)
+            return e, e, np.zeros((2, 0)), np.zeros((2, 0))
+        _, mx, mn, w = next(_extrema_spans(axy, a, min(n, b + s - 1), [s], scratch))
+        off = s - w
+        m = min(nb, mx.shape[1] - off)  # starts past m have no full window
+        wmx = scratch.get("wmx", (2, m))
+        wmn = scratch.get("wmn", (2, m))
+        np.maximum(mx[:, :m], mx[:, off:off + m], out=wmx)
+        np.minimum(mn[:, :m], mn[:, off:off + m], out=wmn)
+        r = scratch.get("r", (2, m))
+        np.subtract(wmx, wmn, out=r)
+        d = scratch.get("d", (m,))
+        np.add(r[0], r[1], out=d)
+        ok = scratch.get("ok", (m,), bool)
+        np.less_equal(d, thr, out=ok)
+        ok &= pre[:m]
+        rel = np.flatnonzero(ok)
+        first = rel[np.diff(rel, prepend=-2) != 1]  # heads of runs
+        return rel + a, first + a, wmx[:, first], wmn[:, first]
+    # window ends found one by one where the clock is irregular; sizes vary
+    w_end = _first_at_or_after(t, target, np.arange(a + k0, b + k0))
+    w_end = np.maximum(w_end, np.arange(a, b), out=w_end)
+    w_end += 1
+    k_lo = int(np.searchsorted(s1, a, side="right"))
+    k_hi = int(np.searchsorted(s0, b, side="left"))
+    s_end = np.full(nb, -1, dtype=np.int64)
+    s_end[pre] = np.repeat(s1[k_lo:k_hi], np.minimum(s1[k_lo:k_hi], b)
+                           - np.maximum(s0[k_lo:k_hi], a))
+    rel = np.flatnonzero(s_end >= w_end)
+    if len(rel) == 0:
+        return rel, rel, np.zeros((2, 0)), np.zeros((2, 0))
+    size = w_end[rel] - a
+    size -= rel
+    hi = min(n, b + int(size.max()) - 1)
+    wmx = np.empty((2, len(rel)))
+    wmn = np.empty((2, len(rel)))
+    for s, mx, mn, w in _extrema_spans(axy, a, hi, np.unique(size).tolist(), scratch):
+        sel = np.flatnonzero(size == s)
+        r = rel[sel]
+        wmx[:, sel] = np.maximum(mx[:, r], mx[:, r + s - w])
+        wmn[:, sel] = np.minimum(mn[:, r], mn[:, r + s - w])
+    r = wmx - wmn
+    keep = np.flatnonzero(r[0] + r[1] <= thr)
+    rel = rel[keep]
+    head = np.diff(rel, prepend=-2) != 1
+    first = keep[head]
+    return rel + a, rel[head] + a, wmx[:, first], wmn[:, first]
+
+
+def _grow_one(axy, p, stop, thr, mx=None, mn=None, m=64):
+    """Growth end for one start, over exponentially larger chunks.
+
+    With ``mx, mn`` (``(2, 1)``: per-axis extrema of the samples up to ``p``)
+    the search goes on from ``p + 1``; without, it starts at ``p``.  Returns
+    the first ``j`` at which D exceeds thr, else ``stop``.
+    """
+    lo = p if mx is None else p + 1
+    while lo < stop:
+        hi = min(lo + m, stop)
+        b = axy[:, lo:hi]
+        amx = np.maximum.accumulate(b, axis=1)
+        amn = np.minimum.accumulate(b, axis=1)
+        if mx is not None:
+            np.maximum(amx, mx, out=amx)
+            np.minimum(amn, mn, out=amn)
+        mx, mn = amx[:, -1:].copy(), amn[:, -1:].copy()
+        amx -= amn
+        over = (amx[0] + amx[1]) > thr
+        k = int(over.argmax())
+        if over[k]:
+            return lo + k
+        lo = hi
+        m *= 2
+    return stop
+
+
+def _walk_on(axy, i, known, okpos, s0, s1, thr):
+    """The walk of fixations from start ``i`` on, one fixation at a time.
+
+    ``known`` maps grown starts to ``(end, next start)``; others are grown
+    here (:func:`_grow_one`).  Returns the starts and ends.
+    """
+    n = len(axy[0])
+    first, end = s0.tolist(), s1.tolist()
+    starts, ends = [], []
+    m = 64
+    while i < n:  # one iteration per fixation
+        if i in known:
+            e, f = known[i]
+        else:
+            stop = end[bisect.bisect_right(first, i) - 1]
+            e = _grow_one(axy, i, stop, thr, m=m)
+            m = max(64, 2 * (e - i))
+            k = int(np.searchsorted(okpos, e))
+            f = int(okpos[k]) if k < len(okpos) else n
+        starts.append(i)
+        ends.append(e)
+        i = f
+    return starts, ends
+
+
+def _grow(axy, c, j0, stop, thr, wmx=None, wmn=None):
+    """Growth ends of the fixations starting at ``c`` (whose windows ``[c, j0)`` pass).
+
+    All starts advance together one sample column at a time, each keeping
+    its running per-axis extrema (given for the windows as ``wmx, wmn``, or
+    gathered here); a start is done at the first sample that makes D exceed
+    the threshold, or at its segment end.  Done starts are dropped from the
+    batch once they are half of it; the last few long growers finish one by
+    one (:func:`_grow_one`).
+    """
+    ax, ay = axy
+    e_all = np.empty(len(c), dtype=np.int64)
+    for a in range(0, len(c), _IDT_BATCH):  # a loop over batches of starts
+        sl = slice(a, a + _IDT_BATCH)
+        sp = stop[sl]
+        m = len(sp)
+        v, w, d = np.empty(m), np.empty(m), np.empty(m)
+        if wmx is not None:
+            pos = j0[sl] - 1
+            mxx, mxy, mnx, mny = wmx[0, sl], wmx[1, sl], wmn[0, sl], wmn[1, sl]
+        else:
+            pos = c[sl].copy()
+            mxx, mxy = ax[pos], ay[pos]
+            mnx, mny = mxx.copy(), mxy.copy()
+            for _ in range(int((j0[sl] - pos).min()) - 1):  # inside every window: no test
+                pos += 1
+                ax.take(pos, out=v)
+                ay.take(pos, out=w)
+                np.maximum(mxx, v, out=mxx)
+                np.minimum(mnx, v, out=mnx)
+                np.maximum(mxy, w, out=mxy)
+                np.minimum(mny, w, out=mny)
+        mxx, mxy, mnx, mny = (np.array(u) for u in (mxx, mxy, mnx, mny))  # own copies
+        idx = np.arange(a, a + m)
+        live = np.ones(m, dtype=bool)
+        n_live = m
+        while n_live >= _IDT_MIN_ACTIVE:  # a loop over sample columns
+            pos += 1
+            ax.take(pos, out=v, mode="clip")  # past the segment end: done anyway
+            ay.take(pos, out=w, mode="clip")
+            np.maximum(mxx, v, out=mxx)
+            np.minimum(mnx, v, out=mnx)
+            np.maximum(mxy, w, out=mxy)
+            np.minimum(mny, w, out=mny)
+            np.subtract(mxx, mnx, out=v)
+            np.subtract(mxy, mny, out=w)
+            np.add(v, w, out=d)
+            done = d > thr
+            done |= pos >= sp
+            done &= live
+            k = np.flatnonzero(done)
+            if len(k):
+                e_all[idx[k]] = pos[k]
+                live[k] = False
+                n_live -= len(k)
+                if n_live < len(pos) // 2:  # drop the done starts
+                    pos, sp, idx = pos[live], sp[live], idx[live]
+                    mxx, mxy, mnx, mny = mxx[live], mxy[live], mnx[live], mny[live]
+                    m = len(pos)
+                    v, w, d = np.empty(m), np.empty(m), np.empty(m)
+                    live = np.ones(m, dtype=bool)
+        for k in np.flatnonzero(live).tolist():  # the few long growers
+            e_all[idx[k]] = _grow_one(axy, int(pos[k]), int(sp[k]), thr,
+                                      np.array([[mxx[k]], [mxy[k]]]),
+                                      np.array([[mnx[k]], [mny[k]]]))
+    return e_all
+
+
+def _chain(succ: np.ndarray) -> np.ndarray:
+    """Indices visited from node 0 following ``succ`` (negative: the end), in order.
+
+    Pointer doubling: after round r the walk holds the first 2**r nodes and
+    ``jump`` leads 2**r steps on; O(N log N) integer gathers, no Python loop.
+    """
+    nn = len(succ)
+    jump = np.append(np.where(succ >= 0, succ, nn), nn)  # nn: past the end, stays there
+    walk = np.zeros(1, dtype=np.int64)
+    while True:  # a loop over doublings (log2 of the chain length)
+        step = jump[walk]
+        step = step[step < nn]
+        if len(step) == 0:
+            return walk
+        walk = np.concatenate([walk, step])
+        jump = jump[jump]
 
 
 def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: float = 1.0,
@@ -496,10 +790,21 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     next window starts after it.  Otherwise the window start moves on by one
     sample.  Windows never cross a data loss or a pause (segment boundary).
 
-    Implemented without a Python loop over samples: the initial window test
-    for every start uses O(n) rolling extrema (van Herk/Gil-Werman, via
-    ``scipy.ndimage``); the loop runs once per fixation, growing it with
-    vectorised running extrema over exponentially larger chunks.
+    Implemented without a Python loop over samples.  In blocks, the initial
+    window of every start is tested with running extrema over doubling spans
+    (a window of ``w`` samples is two overlapping spans of a power of two;
+    exact, as only max and min are taken).  The fixation from a passing start
+    ``i`` ends at ``E(i)``, and the next one starts at the first passing start
+    at or after ``E(i)``.  ``E`` is computed in a few rounds for batches of
+    candidate starts: first the heads of runs of passing starts, then the next
+    starts reached from the last round that are still unknown.  A batch grows
+    together one sample column at a time, each start keeping its running
+    per-axis extrema, until ``D`` exceeds the threshold or its segment ends
+    (the few long growers finish on their own over exponentially larger
+    chunks; the few candidates left after the rounds are followed one
+    fixation at a time).  The walk from the first passing start is then read
+    off by pointer doubling.  Every D is computed exactly as defined above,
+    so the fixations are those of the sequential definition, bit for bit.
 
     A window covers ``min_fixation_ms`` when its duration, last sample time
     minus first plus one interval, reaches it.
@@ -509,6 +814,8 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     Salvucci, D. D., & Goldberg, J. H. (2000). Identifying fixations and saccades
     in eye-tracking protocols. Proc. ETRA 2000, 71-78.
     """
+    from ._chunks import map_blocks
+
     t_all = samples["t_ms"].to_numpy(dtype=float)
     if interval_ms is None:
         interval_ms = nominal_interval_ms(t_all)
@@ -517,54 +824,71 @@ def idt(samples: pd.DataFrame, *, display: "Display", dispersion_threshold_deg: 
     n = len(t)
     if n == 0:
         return _table(np.array([]), np.array([]), t, x, y, raw_valid, interval_ms)
-    ax, ay = geometry.px_to_deg(x, y, display)
-    ax = np.where(seg >= 0, ax, 0.0)
-    ay = np.where(seg >= 0, ay, 0.0)
-    s_end = _segment_end_of_rows(seg)
+    thr = float(dispersion_threshold_deg)
+    axy = _deg_rows(x, y, display)
+    s0, s1 = _segment_runs(seg)
     # window end (exclusive) for each start: first j with t[j-1] >= t[i] + min - interval
-    eps = 1e-9 * max(1.0, float(np.abs(t).max()))
-    last = np.searchsorted(t, t + min_fixation_ms - interval_ms - eps, side="left")
-    last = np.maximum(last, np.arange(n))
-    w_end = last + 1
-    ok = (seg >= 0) & (w_end <= s_end)
-    size = w_end - np.arange(n)
-    disp = np.full(n, np.inf)
-    for L in np.unique(size[ok]):  # a loop over window sizes (one or a few)
-        sel = ok & (size == L)
-        disp[sel] = _rolling_dispersion(ax, ay, int(L))[sel]
-    ok &= disp <= dispersion_threshold_deg
-    # next_ok[i]: first ok start at or after i (n when none)
-    cand = np.where(ok, np.arange(n), n)
-    next_ok = np.minimum.accumulate(cand[::-1])[::-1]
-    next_ok = np.concatenate([next_ok, [n]])
-    starts, ends = [], []
-    thr = dispersion_threshold_deg
-    mx_acc, mn_acc = np.maximum.accumulate, np.minimum.accumulate
-    axy = np.vstack([ax, ay])  # both axes in one call per step
-    i = int(next_ok[0])
-    while i < n:  # one iteration per fixation
-        stop = int(s_end[i])
-        j0 = int(w_end[i])
-        m = max(4 * (j0 - i), 256)
-        while True:
-            hi = min(i + m, stop)
-            b = axy[:, i:hi]
-            r = mx_acc(b, axis=1)
-            r -= mn_acc(b, axis=1)
-            over = (r[0] + r[1])[j0 - i:] > thr
-            k = int(over.argmax()) if len(over) else 0
-            if len(over) and over[k]:
-                e = j0 + k
-                break
-            if hi >= stop:
-                e = stop
-                break
-            m *= 2
-        starts.append(i)
-        ends.append(e)
-        i = int(next_ok[e])
-    out = _table(np.array(starts), np.array(ends), t, x, y, raw_valid, interval_ms)
-    return out
+    eps = 1e-9 * max(1.0, abs(float(t[0])), abs(float(t[-1])))  # max |t|: t is sorted
+    probe = np.arange(0, n, max(1, n // 1024))
+    k0 = max(0, int(np.median(np.searchsorted(t, t[probe] + min_fixation_ms - interval_ms
+                                              - eps) - probe)))  # the usual last row - i
+    scratch = _Scratch()
+    parts = map_blocks(
+        lambda a, b: _ok_starts(axy, t, seg, s0, s1, a, b, thr, min_fixation_ms,
+                                interval_ms, eps, k0, scratch), n, size=_IDT_BLOCK)
+    del scratch
+    okpos = np.concatenate([p[0] for p in parts])
+    if len(okpos) == 0:
+        return _table(np.array([]), np.array([]), t, x, y, raw_valid, interval_ms)
+    new = np.concatenate([p[1] for p in parts])  # starts of runs of passing starts
+    wmx = np.concatenate([p[2] for p in parts], axis=1)
+    wmn = np.concatenate([p[3] for p in parts], axis=1)
+    del parts
+    at = np.flatnonzero(new % _IDT_BLOCK == 0)  # a block's first row heads a run there
+    if len(at):
+        k = np.minimum(np.searchsorted(okpos, new[at] - 1), len(okpos) - 1)
+        keep = np.ones(len(new), dtype=bool)
+        keep[at[okpos[k] == new[at] - 1]] = False  # the run began in the block before
+        new, wmx, wmn = new[keep], wmx[:, keep], wmn[:, keep]
+
+    def next_ok(e):  # first passing start at or after e (n when none)
+        k = np.searchsorted(okpos, e)
+        return np.where(k < len(okpos), okpos[np.minimum(k, len(okpos) - 1)], n)
+
+    # rounds of batch growth over the candidate starts the walk may visit
+    seen = np.zeros(n + 1, dtype=bool)
+    seen[n] = True
+    cs, es, fs = [], [], []
+    while len(new) >= _IDT_MIN_ROUND:  # a loop over rounds (a few)
+        seen[new] = True
+        j0 = _window_end(t, new, min_fixation_ms, interval_ms, eps, k0)
+        e = _grow(axy, new, j0, _segment_end(s0, s1, new), thr, wmx, wmn)
+        wmx = wmn = None
+        f = next_ok(e)
+        cs.append(new)
+        es.append(e)
+        fs.append(f)
+        new = np.unique(f[~seen[f]])
+    del seen
+    c = np.concatenate(cs) if cs else np.zeros(0, dtype=np.int64)
+    order = np.argsort(c)
+    c = c[order]
+    e = np.concatenate(es)[order] if cs else c
+    f = np.concatenate(fs)[order] if cs else c
+    i = int(okpos[0])  # the first start
+    starts = ends = np.zeros(0, dtype=np.int64)
+    if len(c) and c[0] == i:  # the first start began the first run: grown
+        k = np.minimum(np.searchsorted(c, f), len(c) - 1)
+        succ = np.where(c[k] == f, k, -1)  # -1: the end, or a start not grown
+        walk = _chain(succ)
+        starts, ends = c[walk], e[walk]
+        i = int(f[walk[-1]])
+    if i < n:  # rare: the walk reaches a start no round grew
+        known = dict(zip(c.tolist(), zip(e.tolist(), f.tolist())))
+        more = _walk_on(axy, i, known, okpos, s0, s1, thr)
+        starts = np.concatenate([starts, np.array(more[0], dtype=np.int64)])
+        ends = np.concatenate([ends, np.array(more[1], dtype=np.int64)])
+    return _table(starts, ends, t, x, y, raw_valid, interval_ms)
 
 
 # --------------------------------------------------------------------------- post-processing

@@ -7,6 +7,7 @@ published description (Salvucci & Goldberg 2000, REFERENCES.md).
 
 from __future__ import annotations
 
+import contextlib
 import math
 
 import numpy as np
@@ -15,6 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from aoi_fix import detect as detect_module
 from aoi_fix import geometry
 from aoi_fix.clean import fill_gaps
 from aoi_fix.config import Detection, Display
@@ -308,6 +310,116 @@ def test_idt_equals_reference_on_long_fixation():
                         min_fixation_ms=100, interval_ms=2.0)
     assert ref == [(0, 250), (250, 300)]
     assert list(zip(got["start_row"], got["end_row"])) == ref
+
+
+# I-DT computes growth ends in batches of candidate starts and walks the chain of
+# fixations afterwards; these settings of its private block/batch sizes force every
+# path (many tiny blocks, batches and rounds; column-by-column growth to the end;
+# long growers finished one by one; the walk one fixation at a time) on short traces.
+IDT_SETTINGS = {
+    "default": {},
+    "tiny": dict(_IDT_BLOCK=1, _IDT_BATCH=2, _IDT_MIN_ROUND=1, _IDT_MIN_ACTIVE=1),
+    "small": dict(_IDT_BLOCK=7, _IDT_BATCH=5, _IDT_MIN_ROUND=3, _IDT_MIN_ACTIVE=3),
+    "one_by_one": dict(_IDT_BLOCK=16, _IDT_BATCH=4, _IDT_MIN_ROUND=2, _IDT_MIN_ACTIVE=10**9),
+    "walk": dict(_IDT_BLOCK=32, _IDT_MIN_ROUND=10**9),
+}
+
+
+@contextlib.contextmanager
+def _idt_settings(name):
+    saved = {k: getattr(detect_module, k) for k in IDT_SETTINGS[name]}
+    for k, v in IDT_SETTINGS[name].items():
+        setattr(detect_module, k, v)
+    try:
+        yield
+    finally:
+        for k, v in saved.items():
+            setattr(detect_module, k, v)
+
+
+@st.composite
+def fixation_traces(draw):
+    """Long and many fixations: still or drifting stretches of 1-150 samples with
+    noise, joined by jumps or few-sample saccades, on a regular or jittered clock
+    (0.25 ms grid), with occasional dropouts."""
+    seed = draw(st.integers(0, 2**32 - 1))
+    rng = np.random.default_rng(seed)
+    n_fix = draw(st.integers(1, 12))
+    interval_q = draw(st.sampled_from([4, 8, 16]))
+    jitter_q = draw(st.sampled_from([0, 1, interval_q // 4]))
+    noise_px = draw(st.sampled_from([0.0, 0.2, 1.0, 3.0]))
+    drift_px = draw(st.sampled_from([0.0, 0.05, 0.3]))
+    p_drop = draw(st.sampled_from([0.0, 0.0, 0.01]))
+    pos, cur = [], np.array([C, C]) + rng.uniform(-200, 200, 2)
+    for _ in range(n_fix):
+        m = int(rng.integers(1, 151))
+        d = rng.normal(0, drift_px, 2)
+        pos.append(cur + np.outer(np.arange(m), d) + rng.normal(0, noise_px, (m, 2)))
+        cur = pos[-1][-1]
+        nxt = np.array([C, C]) + rng.uniform(-250, 250, 2)
+        k = int(rng.integers(0, 5))  # samples in flight
+        pos.append(cur + np.outer(np.arange(1, k + 1) / (k + 1), nxt - cur))
+        cur = nxt
+    xy = np.concatenate(pos)
+    n = len(xy)
+    steps = interval_q + rng.integers(-jitter_q, jitter_q + 1, n)
+    t = 1000.0 + np.cumsum(np.maximum(steps, 1)) * 0.25
+    valid = rng.random(n) >= p_drop
+    valid[0] = True
+    return _samples(t, xy[:, 0], xy[:, 1], valid)
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(s=fixation_traces(), thr=st.floats(0.1, 2.5), min_q=st.integers(0, 600),
+       max_gap=st.sampled_from([0.0, 75.0]), how=st.sampled_from(sorted(IDT_SETTINGS)))
+def test_idt_equals_reference_long_and_many_fixations(s, thr, min_q, max_gap, how):
+    min_ms = min_q * 0.25
+    interval = nominal_interval_ms(s["t_ms"].to_numpy())
+    filled = fill_gaps(s, max_gap_ms=max_gap, interval_ms=interval)
+    with _idt_settings(how):
+        got = idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
+                  min_fixation_ms=min_ms, interval_ms=interval)
+    ref = reference_idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
+                        min_fixation_ms=min_ms, interval_ms=interval)
+    assert list(zip(got["start_row"].tolist(), got["end_row"].tolist())) == ref
+
+
+@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(s=traces(), thr=st.floats(0.05, 3.0), min_q=st.integers(0, 800),
+       max_gap=st.sampled_from([0.0, 20.0, 75.0]), how=st.sampled_from(sorted(IDT_SETTINGS)))
+def test_idt_equals_reference_any_block_and_batch_size(s, thr, min_q, max_gap, how):
+    min_ms = min_q * 0.25
+    interval = nominal_interval_ms(s["t_ms"].to_numpy())
+    filled = fill_gaps(s, max_gap_ms=max_gap, interval_ms=interval)
+    with _idt_settings(how):
+        got = idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
+                  min_fixation_ms=min_ms, interval_ms=interval)
+    ref = reference_idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
+                        min_fixation_ms=min_ms, interval_ms=interval)
+    assert list(zip(got["start_row"].tolist(), got["end_row"].tolist())) == ref
+
+
+@pytest.mark.parametrize("how", sorted(IDT_SETTINGS))
+def test_idt_equals_reference_on_slow_pursuit(how):
+    # gaze sweeping a circle at 15 deg/s: every window passes, the fixations follow one
+    # another with no gap, so the walk is one long chain inside one run of passing
+    # starts (a single candidate to begin with); a few spikes and a loss break it up
+    n = 3000
+    ang = np.arange(n) * 0.25 / 200
+    x = C + 200 * np.cos(ang)
+    y = C + 200 * np.sin(ang)
+    x[[700, 701, 1900]] += 40.0
+    valid = np.ones(n, bool)
+    valid[2400:2450] = False
+    s = _samples(np.arange(n) * 1.0, x, y, valid)
+    filled = fill_gaps(s, max_gap_ms=20, interval_ms=1.0)
+    with _idt_settings(how):
+        got = idt(filled, display=DISPLAY, dispersion_threshold_deg=1.0, min_fixation_ms=60,
+                  interval_ms=1.0)
+    ref = reference_idt(filled, display=DISPLAY, dispersion_threshold_deg=1.0,
+                        min_fixation_ms=60, interval_ms=1.0)
+    assert len(ref) > 30
+    assert list(zip(got["start_row"].tolist(), got["end_row"].tolist())) == ref
 
 
 # --------------------------------------------------------------------------- merge_and_discard

@@ -303,6 +303,9 @@ def main() -> None:  # console-script entry point
     """Run the app; a usage error (unknown option, missing argument) is one line, exit 2."""
     from typer._click import exceptions as click_exc  # the click typer ships with
 
+    from ._memory import keep_freed_memory
+
+    keep_freed_memory()  # a short-lived process: reuse freed columns (aoi_fix/_memory.py)
     try:
         rv = app(standalone_mode=False)
     except click_exc.NoArgsIsHelpError as e:  # bare `aoi-fix`: help was shown

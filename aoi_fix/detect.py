@@ -66,11 +66,11 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
             "duration_ms": pd.Series([], dtype=float), "x_px": pd.Series([], dtype=float),
             "y_px": pd.Series([], dtype=float), "start_row": pd.Series([], dtype="int64"),
             "end_row": pd.Series([], dtype="int64")})
-    mx, cnt = _run_means(starts, ends, x, y, raw_valid & np.isfinite(x) & np.isfinite(y))
+    mx, cnt = _run_means(starts, ends, x, y, raw_valid)
     lacking = cnt == 0  # no raw valid sample: mean of the finite (interpolated) ones
     if lacking.any():
         k = np.flatnonzero(lacking)
-        mx[k], _ = _run_means(starts[k], ends[k], x, y, np.isfinite(x) & np.isfinite(y))
+        mx[k], _ = _run_means(starts[k], ends[k], x, y)
     my = mx[:, 1]
     mx = mx[:, 0]
     onset = t[starts]
@@ -84,11 +84,65 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
 
 
 def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarray,
-               use: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean (x, y) of the ``use`` samples of each run [start, end), and their count.
+               valid: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Mean (x, y) of each run [start, end) over its samples with a finite position
+    (and ``valid``, when given), and their count; NaN means where there is none.
 
-    One prefix sum per coordinate; NaN means for runs with no ``use`` sample.
+    Runs in time order that do not overlap (every detector's) are summed with
+    ``np.add.reduceat`` over groups of runs spanning about one block of
+    samples, so no full-length temporary is made and each run's sum is taken
+    over its own samples only; other runs fall back to prefix sums.
+
+    >>> x = np.array([1., 2, np.nan, 4, 5, 6])
+    >>> m, c = _run_means(np.array([0, 3, 5]), np.array([3, 5, 5]), x, x)
+    >>> m[:, 0].tolist()[:2], c.tolist()
+    ([1.5, 4.5], [2, 2, 0])
     """
+    from ._chunks import BLOCK
+
+    starts = np.asarray(starts, dtype=np.int64)
+    ends = np.asarray(ends, dtype=np.int64)
+    m = len(starts)
+    out = np.full((m, 2), np.nan)
+    cnt = np.zeros(m, dtype=np.int64)
+    nonempty = np.flatnonzero(ends > starts)
+    if len(nonempty) == 0:
+        return out, cnt
+    st, en = starts[nonempty], ends[nonempty]
+    if len(st) > 1 and not bool(np.all(st[1:] >= en[:-1])):
+        return _run_means_prefix(starts, ends, x, y, valid)
+    # groups of consecutive runs, each starting about BLOCK samples after the last
+    marks = np.arange(int(st[0]), int(en[-1]), BLOCK)
+    cut = np.unique(np.searchsorted(st, marks, side="left"))
+    bounds = np.append(cut, len(st)).tolist()
+    for g0, g1 in zip(bounds[:-1], bounds[1:]):  # a loop over groups of runs (blocks)
+        if g1 <= g0:
+            continue
+        a, b = int(st[g0]), int(en[g1 - 1])
+        use = np.isfinite(x[a:b])
+        use &= np.isfinite(y[a:b])
+        if valid is not None:
+            use &= valid[a:b]
+        idx = np.empty(2 * (g1 - g0), dtype=np.int64)
+        idx[0::2] = st[g0:g1] - a
+        idx[1::2] = en[g0:g1] - a
+        if idx[-1] == b - a:  # the last run reaches the end of the stretch
+            idx = idx[:-1]
+        rows = nonempty[g0:g1]
+        c = np.add.reduceat(use, idx, dtype=np.int64)[0::2]
+        cnt[rows] = c
+        with np.errstate(invalid="ignore", divide="ignore"):
+            for j, v in enumerate((x, y)):  # two coordinates
+                vals = np.where(use, v[a:b], 0.0)
+                out[rows, j] = np.add.reduceat(vals, idx)[0::2] / c
+    return out, cnt
+
+
+def _run_means_prefix(starts, ends, x, y, valid):
+    """:func:`_run_means` by prefix sums (any runs, also overlapping ones)."""
+    use = np.isfinite(x) & np.isfinite(y)
+    if valid is not None:
+        use &= valid
     n = len(x)
     cn = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(use, out=cn[1:])

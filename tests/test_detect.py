@@ -598,3 +598,36 @@ def test_short_dropout_is_bridged(method):
                            interval_ms=10.0)
     assert len(fix) == 1
     assert fix.loc[0, "onset_ms"] == 0.0 and fix.loc[0, "offset_ms"] == 600.0
+
+
+@pytest.mark.parametrize("block", [3, 64, 1 << 17])
+def test_run_means_by_groups_equal_prefix_sums(monkeypatch, block):
+    # reference: numpy nanmean over each run (general-purpose library), and the
+    # prefix-sum version kept for overlapping runs
+    from aoi_fix import _chunks
+    from aoi_fix.detect import _run_means, _run_means_prefix
+
+    monkeypatch.setattr(_chunks, "BLOCK", block)
+    rng = np.random.default_rng(7)
+    n = 500
+    x = rng.normal(300, 50, n)
+    y = rng.normal(200, 30, n)
+    x[rng.random(n) < 0.1] = np.nan
+    y[rng.random(n) < 0.05] = np.nan
+    valid = rng.random(n) < 0.8
+    cuts = np.sort(rng.choice(np.arange(n + 1), size=80, replace=False))
+    starts, ends = cuts[0::2], cuts[1::2]
+    ends[3] = starts[3]  # an empty run
+    ends[-1] = n  # a run to the very end
+    for v in (None, valid):
+        got, cnt = _run_means(starts, ends, x, y, v)
+        ref, rcnt = _run_means_prefix(starts, ends, x, y, v)
+        np.testing.assert_array_equal(cnt, rcnt)
+        np.testing.assert_allclose(got, ref, rtol=1e-12, equal_nan=True)
+        use = np.isfinite(x) & np.isfinite(y) & (True if v is None else v)
+        for k in (0, 10, len(starts) - 1):
+            sel = np.arange(starts[k], ends[k])
+            sel = sel[use[sel]]
+            assert cnt[k] == len(sel)
+            if len(sel):
+                assert got[k, 0] == pytest.approx(np.mean(x[sel]), rel=1e-12)

@@ -208,15 +208,32 @@ def _owned_columns(table) -> pd.DataFrame:
                 or pa.types.is_boolean(col.type):
             if col.null_count and not pa.types.is_floating(col.type):
                 col = col.cast(pa.float64())
-            arr = col.to_numpy()
-            if not arr.flags.writeable or not arr.flags.owndata:
-                arr = arr.copy()
-            out[name] = pd.Series(arr, copy=False)
+            out[name] = pd.Series(_chunks_to_numpy(col), copy=False)
         else:
             out[name] = col.to_pandas()
         del col
         pa.default_memory_pool().release_unused()  # hand the column's memory back now
     return pd.DataFrame(out, copy=False)
+
+
+def _chunks_to_numpy(col) -> np.ndarray:
+    """A numeric Arrow column as one numpy array that this process owns (nulls NaN).
+
+    The parser's blocks are copied straight into one preallocated array: one
+    copy, where ``ChunkedArray.to_numpy`` would first concatenate them into a
+    read-only Arrow buffer that then needs a second copy to be writable.
+    """
+    chunks = [c for c in col.chunks if len(c)]
+    if not chunks:
+        return np.array(col.to_numpy(), copy=True)
+    first = chunks[0].to_numpy(zero_copy_only=False)
+    out = np.empty(len(col), dtype=first.dtype)
+    at = 0
+    for k, chunk in enumerate(chunks):  # a loop over the parser's blocks (MBs each)
+        part = first if k == 0 else chunk.to_numpy(zero_copy_only=False)
+        out[at:at + len(part)] = part
+        at += len(part)
+    return out
 
 
 def _line_scanner(path: Path):

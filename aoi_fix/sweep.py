@@ -303,35 +303,61 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     else:
         pos, hit = np.zeros(len(keys), np.int64), np.zeros(len(keys), dtype=bool)
     lengths = en - st
-    f_of = np.repeat(np.arange(len(st)), lengths)  # fixation of every fixation sample
-    within = np.arange(lengths.sum()) - np.repeat(np.cumsum(lengths) - lengths, lengths)
-    rows = st[f_of] + within
-    h = hit[f_of]
-    code = np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int64)
-    if h.any():
-        code[rows[h]] = store["codes"][store["offsets"][pos[f_of[h]]] + within[h]]
-    new_fix = fixations[~hit]
-    xm, ym = fixation_average(filled, new_fix, window_ms=window_ms,
-                              interval_ms=session.interval_ms)
-    sel = rows[~h]
-    part = dataclasses.replace(
-        session, samples=pd.DataFrame({"t_ms": session.samples["t_ms"].to_numpy(float)[sel]}))
-    part_base = Matched(trial_idx=placement.trial_idx[sel], frame=placement.frame[sel],
-                        code=placement.code[sel], names_by_trial=placement.names_by_trial)
-    fresh = match_session(part, x_px=xm[sel], y_px=ym[sel], base=part_base)
-    code[sel] = fresh.code
-    if (~hit).any():  # remember the new fixations
-        add = ~hit
+    code = np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int32)
+    if hit.any():  # known fixations: copy their stored codes, range by range
+        code[_ranges(st[hit], lengths[hit])] = \
+            store["codes"][_ranges(store["offsets"][pos[hit]], lengths[hit])]
+    miss = ~hit
+    fresh_codes = np.zeros(0, dtype=np.int32)
+    names = placement.names_by_trial
+    if miss.any():
+        new_fix = fixations[miss]
+        xm, ym = fixation_average(filled, new_fix, window_ms=window_ms,
+                                  interval_ms=session.interval_ms)
+        sel = _ranges(st[miss], lengths[miss])
+        part = dataclasses.replace(
+            session, samples=pd.DataFrame({"t_ms": session.samples["t_ms"].to_numpy(float)[sel]}))
+        part_base = Matched(trial_idx=placement.trial_idx[sel], frame=placement.frame[sel],
+                            code=placement.code[sel], names_by_trial=placement.names_by_trial)
+        fresh = match_session(part, x_px=xm[sel], y_px=ym[sel], base=part_base)
+        del xm, ym
+        fresh_codes = fresh.code.astype(np.int32, copy=False)
+        code[sel] = fresh_codes
+        names = fresh.names_by_trial
+        # remember the new fixations
         old_codes = store.get("codes", np.zeros(0, np.int32))
         old_off = store.get("offsets", np.zeros(0, np.int64))
-        add_off = len(old_codes) + np.concatenate([[0], np.cumsum(lengths[add])[:-1]])
-        all_keys = np.concatenate([known, keys[add]])
+        add_off = len(old_codes) + np.concatenate([[0], np.cumsum(lengths[miss])[:-1]])
+        all_keys = np.concatenate([known, keys[miss]])
         all_off = np.concatenate([old_off, add_off.astype(np.int64)])
         order = np.argsort(all_keys, kind="stable")
         store.update(keys=all_keys[order], offsets=all_off[order],
-                     codes=np.concatenate([old_codes, fresh.code.astype(np.int32)]))
+                     codes=np.concatenate([old_codes, fresh_codes]))
     return Matched(trial_idx=placement.trial_idx, frame=placement.frame, code=code,
-                   names_by_trial=fresh.names_by_trial)
+                   names_by_trial=names)
+
+
+def _ranges(starts: np.ndarray, lengths: np.ndarray) -> np.ndarray:
+    """The rows of consecutive ranges ``[start, start + length)``, concatenated.
+
+    One cumulative sum (no per-range loop, no repeat of a row number per row).
+
+    >>> _ranges(np.array([5, 0, 9]), np.array([2, 3, 0])).tolist()
+    [5, 6, 0, 1, 2]
+    """
+    starts = np.asarray(starts, dtype=np.int64)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    keep = lengths > 0
+    starts, lengths = starts[keep], lengths[keep]
+    total = int(lengths.sum())
+    if total == 0:
+        return np.zeros(0, dtype=np.int64)
+    step = np.ones(total, dtype=np.int64)
+    first = np.cumsum(lengths) - lengths  # where each range begins in the output
+    step[0] = starts[0]
+    # at a range's first row, jump from the previous range's last row to its start
+    step[first[1:]] = starts[1:] - (starts[:-1] + lengths[:-1] - 1)
+    return np.cumsum(step, out=step)
 
 
 def _evaluate_by_convert(session) -> dict:
@@ -391,6 +417,14 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
         # pursuit events: looking time follows [aois] looking_events; run
         # convert's own summaries (nothing worth sharing)
         return _evaluate_by_convert(session)
+    used = {"nominal_interval_ms": session.interval_ms, **dict(fixations.attrs),
+            "offset_correction_applied": False}
+    # a setting that finds exactly the fixations of an earlier one (e.g. a velocity
+    # threshold below the noise-adaptive one) has the same tables
+    same_key = ("same_fixations", det.max_gap_ms, _fixations_digest(fixations),
+                repr(dataclasses.astuple(study.aois)))
+    if same_key in cache:
+        return {**cache[same_key], "detection_used": used}
     t = session.samples["t_ms"].to_numpy(float)
     fid = fixation_of_sample(len(t), fixations)
     window = study.aois.position_window_ms
@@ -420,9 +454,19 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
         "fixation_share": float(w[matched.trial_idx >= 0].sum() / trial_ms)
         if trial_ms > 0 else math.nan,
     }
-    used = {"nominal_interval_ms": session.interval_ms, **dict(fixations.attrs),
-            "offset_correction_applied": False}
+    cache[same_key] = {"summary": summary, "stats": stats}  # small: one row per trial x AOI
     return {"summary": summary, "stats": stats, "detection_used": used}
+
+
+def _fixations_digest(fixations: pd.DataFrame) -> str:
+    """A fingerprint of a fixation table's rows, times and positions."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for c in ("start_row", "end_row", "onset_ms", "offset_ms", "x_px", "y_px"):
+        h.update(np.ascontiguousarray(fixations[c].to_numpy()).tobytes())
+    h.update(str(len(fixations)).encode())
+    return h.hexdigest()
 
 
 # --------------------------------------------------------------------------- workers

@@ -98,6 +98,22 @@ def test_rows_identical_to_convert_matching_keys(session, tmp_path):
                                 "aois.margin_deg"], ["detection.min_fixation_ms=80"])
 
 
+def test_settings_finding_the_same_fixations_reuse_tables(session, tmp_path):
+    # two velocity floors below the noise-adaptive threshold give the same fixations;
+    # the second setting reuses the first one's tables: still identical to convert
+    out = tmp_path / "sweep"
+    r = runner.invoke(app, ["sweep", *_inputs(session),
+                            "--grid", "detection.velocity_threshold_deg_s=5,10,200",
+                            "--out-dir", str(out)])
+    assert r.exit_code == 0, _err(r)
+    settings = _text(out / "sweep_settings.csv")
+    assert settings.iloc[0, 2:].tolist() == settings.iloc[1, 2:].tolist()
+    assert settings.iloc[0, 2:].tolist() != settings.iloc[2, 2:].tolist()
+    _assert_rows_equal_convert(session, out, tmp_path, ["detection.velocity_threshold_deg_s"])
+    used = json.loads((out / "manifest.json").read_text())["settings"]
+    assert [u["values"]["detection.velocity_threshold_deg_s"] for u in used] == [5, 10, 200]
+
+
 def test_settings_stats_agree_with_convert(session, cli_sweep, tmp_path):
     settings = pd.read_csv(cli_sweep / "sweep_settings.csv")
     row = settings[(settings["detection.method"] == "idt")

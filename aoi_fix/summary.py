@@ -141,6 +141,23 @@ def carry_weights(t_ms: np.ndarray, fid: np.ndarray, w_own: np.ndarray,
     return carry
 
 
+def _run_starts(*keys: np.ndarray) -> np.ndarray:
+    """First row of every run of rows on which all ``keys`` stay the same.
+
+    >>> _run_starts(np.array([0, 0, 1, 1, 1]), np.array([5, 6, 6, 6, 7])).tolist()
+    [0, 1, 2, 4]
+    """
+    n = len(keys[0])
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    change = keys[0][1:] != keys[0][:-1]
+    for k in keys[1:]:
+        change |= k[1:] != k[:-1]
+    starts = np.flatnonzero(change)
+    starts += 1
+    return np.concatenate([np.zeros(1, dtype=starts.dtype), starts])
+
+
 def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
                    w: np.ndarray, code: np.ndarray, fixations: pd.DataFrame,
                    n_codes: int, w_own: np.ndarray | None = None) -> pd.DataFrame:
@@ -162,39 +179,38 @@ def fixation_parts(t_ms: np.ndarray, fid: np.ndarray, trial_idx: np.ndarray,
         return pd.DataFrame({c: pd.Series([], dtype=float if c.endswith(("_ms", "_px"))
                                           else (bool if c == "clipped" else "int64"))
                              for c in cols})
+    # runs of samples with one fixation, trial and AOI code: every sum below is over
+    # runs (np.add.reduceat), not over samples
+    rs = _run_starts(fid, trial_idx, code)
+    f_r, t_r = fid[rs], trial_idx[rs]
+    w_r = np.add.reduceat(w, rs) if len(rs) else np.zeros(0)
     # a part starts where the fixation or the trial changes, on a fixation sample
-    cut = np.flatnonzero((fid[1:] != fid[:-1]) | (trial_idx[1:] != trial_idx[:-1])) + 1
-    first = np.concatenate([[0], cut]) if is_fix[0] else cut
-    first = first[is_fix[first]]
+    fix_r = f_r >= 0
+    new_part = fix_r.copy()
+    new_part[1:] &= (f_r[1:] != f_r[:-1]) | (t_r[1:] != t_r[:-1])
+    first = rs[new_part]
     n_parts = len(first)
+    part_r = np.cumsum(new_part) - 1  # part of each run (fixation runs only)
+    part_r, w_fr, c_r = part_r[fix_r], w_r[fix_r], code[rs[fix_r]]
     f_first = fid[first]
     # a part ends at the next part's start or at its fixation's end
     fix_end = fixations["end_row"].to_numpy(np.int64)[f_first]
     nxt = np.append(first[1:], n)
     last = np.minimum(nxt, fix_end) - 1
-    mark = np.zeros(n, dtype=np.int64)
-    mark[first] = 1
-    part = np.cumsum(mark, out=mark)
-    part -= 1
-    np.maximum(part, 0, out=part)  # samples before the first part carry no weight
     # a part ends where its last sample's own time ends (``w`` may also carry
     # time cut off at a trial boundary before that sample)
     own = w if w_own is None else w_own
     offset = t_ms[last] + own[last]
     # a part starts where its time starts (a trial boundary for a clipped part)
-    onset = offset - np.bincount(part, weights=w, minlength=n_parts)[:n_parts]
+    onset = offset - np.bincount(part_r, weights=w_fr, minlength=n_parts)[:n_parts]
     fx = fixations["x_px"].to_numpy(float)
     fy = fixations["y_px"].to_numpy(float)
     fixno = fixations["fixation"].to_numpy(np.int64)
     # majority code by time: codes shifted to be >= 0
     shift = -CODE_OFF_VIDEO
     width = n_codes + shift
-    key = part
-    key *= width
-    key += np.maximum(code, CODE_OFF_VIDEO)
-    key += shift
-    tot = np.bincount(key, weights=w, minlength=n_parts * width)[:n_parts * width]
-    del key, part
+    key = part_r * width + (np.maximum(c_r, CODE_OFF_VIDEO).astype(np.int64) + shift)
+    tot = np.bincount(key, weights=w_fr, minlength=n_parts * width)[:n_parts * width]
     best = tot.reshape(n_parts, width).argmax(axis=1) - shift
     whole_on = fixations["onset_ms"].to_numpy(float)[f_first]
     whole_off = fixations["offset_ms"].to_numpy(float)[f_first]
@@ -216,13 +232,16 @@ def aoi_summary(trials: pd.DataFrame, names_by_trial: list[tuple[str, ...]],
     n_tr = len(trials)
     shift = -CODE_OFF_VIDEO
     width = max((len(n) for n in names_by_trial), default=0) + shift
-    # samples outside trials go to a first row of bins that is dropped
-    key = np.maximum(trial_idx, -1).astype(np.int64)
+    # time per run of samples with one trial and code, then per (trial, code); samples
+    # outside trials go to a first row of bins that is dropped
+    rs = _run_starts(trial_idx, code)
+    w_r = np.add.reduceat(w, rs) if len(rs) else np.zeros(0)
+    key = np.maximum(trial_idx[rs], -1).astype(np.int64)
     key += 1
     key *= width
-    key += np.maximum(code, CODE_OFF_VIDEO)
+    key += np.maximum(code[rs], CODE_OFF_VIDEO)
     key += shift
-    tot = np.bincount(key, weights=w, minlength=(n_tr + 1) * width)
+    tot = np.bincount(key, weights=w_r, minlength=(n_tr + 1) * width)
     del key
     tot = tot[width:(n_tr + 1) * width].reshape(n_tr, width)
     p = parts[parts["trial_row"].to_numpy() >= 0]

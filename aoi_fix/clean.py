@@ -122,6 +122,15 @@ def smooth_savgol(t_ms: np.ndarray, values: np.ndarray, segment: np.ndarray, *,
     return out
 
 
+def window_half_width(window_ms: float, interval_ms: float) -> int:
+    """Samples on either side of a sample in :func:`fixation_average`'s window.
+
+    >>> window_half_width(100.0, 1000 / 300)
+    15
+    """
+    return max(0, int(round(window_ms / (2.0 * interval_ms))))
+
+
 def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms: float,
                      interval_ms: float, fid: np.ndarray | None = None
                      ) -> tuple[np.ndarray, np.ndarray]:
@@ -157,7 +166,7 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
         fid = fixation_of_sample(n, fixations)
     st = fixations["start_row"].to_numpy(np.int64)
     en = fixations["end_row"].to_numpy(np.int64)
-    h = max(0, int(round(window_ms / (2.0 * interval_ms))))
+    h = window_half_width(window_ms, interval_ms)
 
     def block(a: int, b: int) -> None:  # rows a..b-1; reads the input, writes x, y there
         i = np.flatnonzero(fid[a:b] >= 0)  # fixation samples, in order

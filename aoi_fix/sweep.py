@@ -278,61 +278,63 @@ def _placement(session):
 
 def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.DataFrame,
                      fid: np.ndarray, window_ms: float, store: dict):
-    """AOI codes of the fixation samples at window-averaged positions, reusing known fixations.
+    """AOI codes of the fixation samples at window-averaged positions, reusing known ones.
 
-    The matched position of a fixation sample depends only on the gap-filled
-    samples, the window and its fixation's first and last row, so a fixation
-    found again by another setting (same rows, same gap filling and same
-    ``[aois]`` section: the caller keys ``store`` by those) gets the same
-    codes.  Only fixations not seen before are averaged and hit-tested, on a
-    session cut down to their samples (hit testing is per point).  Other
-    samples get "not in trial", as in ``convert``.
+    The matched position of a fixation sample is the mean of the gap-filled
+    samples in its window, the rows ``[max(i - h, start), min(i + h + 1,
+    end))`` of its fixation (:func:`aoi_fix.clean.fixation_average`).  So a
+    sample whose window rows are the same as when it was last matched, by any
+    earlier setting (same gap filling and ``[aois]`` section: the caller keys
+    ``store`` by those), gets the same code: settings that move a fixation's
+    ends by a few samples re-match only the samples near those ends.  The
+    rest are averaged and hit-tested on a session cut down to them (hit
+    testing is per point).  Other samples get "not in trial", as in ``convert``.
     """
-    from .clean import fixation_average
+    from .clean import fixation_average, window_half_width
     from .pipeline import Matched, match_session
     from .summary import CODE_NOT_IN_TRIAL
 
     n = len(fid)
-    st = fixations["start_row"].to_numpy(np.int64)
-    en = fixations["end_row"].to_numpy(np.int64)
-    keys = st * (n + 1) + en
-    known = store.get("keys", np.zeros(0, np.int64))
-    if len(known):
-        pos = np.minimum(np.searchsorted(known, keys), len(known) - 1)
-        hit = known[pos] == keys
-    else:
-        pos, hit = np.zeros(len(keys), np.int64), np.zeros(len(keys), dtype=bool)
-    lengths = en - st
-    code = np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int32)
-    if hit.any():  # known fixations: copy their stored codes, range by range
-        code[_ranges(st[hit], lengths[hit])] = \
-            store["codes"][_ranges(store["offsets"][pos[hit]], lengths[hit])]
-    miss = ~hit
-    fresh_codes = np.zeros(0, dtype=np.int32)
+    if n >= 2**31 - 2:  # row numbers are int32 below
+        raise ValueError("recordings of 2**31 samples or more are not supported")
+    st = fixations["start_row"].to_numpy(np.int32)
+    en = fixations["end_row"].to_numpy(np.int32)
+    h = window_half_width(window_ms, session.interval_ms)
+    if "code" not in store:
+        store.update(code=np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int32),
+                     lo=np.full(n, -1, dtype=np.int32), hi=np.full(n, -1, dtype=np.int32),
+                     row=np.arange(n, dtype=np.int32))
+    fin = fid >= 0
+    f = np.maximum(fid, 0)
+    # each fixation sample's window rows [lo, hi); -1 outside fixations
+    lo = store["row"] - h
+    np.maximum(lo, st.take(f), out=lo)
+    hi = store["row"] + (h + 1)
+    np.minimum(hi, en.take(f), out=hi)
+    del f
+    miss = lo != store["lo"]
+    miss |= hi != store["hi"]
+    miss &= fin
+    sel = np.flatnonzero(miss)
+    del miss
     names = placement.names_by_trial
-    if miss.any():
-        new_fix = fixations[miss]
-        xm, ym = fixation_average(filled, new_fix, window_ms=window_ms,
+    if len(sel):
+        # averaged positions of the fixations holding those samples (the same numbers
+        # as for the whole table: the average is computed in fixed blocks of rows)
+        with_miss = np.unique(fid[sel])
+        xm, ym = fixation_average(filled, fixations.iloc[with_miss], window_ms=window_ms,
                                   interval_ms=session.interval_ms)
-        sel = _ranges(st[miss], lengths[miss])
         part = dataclasses.replace(
             session, samples=pd.DataFrame({"t_ms": session.samples["t_ms"].to_numpy(float)[sel]}))
         part_base = Matched(trial_idx=placement.trial_idx[sel], frame=placement.frame[sel],
                             code=placement.code[sel], names_by_trial=placement.names_by_trial)
         fresh = match_session(part, x_px=xm[sel], y_px=ym[sel], base=part_base)
         del xm, ym
-        fresh_codes = fresh.code.astype(np.int32, copy=False)
-        code[sel] = fresh_codes
         names = fresh.names_by_trial
-        # remember the new fixations
-        old_codes = store.get("codes", np.zeros(0, np.int32))
-        old_off = store.get("offsets", np.zeros(0, np.int64))
-        add_off = len(old_codes) + np.concatenate([[0], np.cumsum(lengths[miss])[:-1]])
-        all_keys = np.concatenate([known, keys[miss]])
-        all_off = np.concatenate([old_off, add_off.astype(np.int64)])
-        order = np.argsort(all_keys, kind="stable")
-        store.update(keys=all_keys[order], offsets=all_off[order],
-                     codes=np.concatenate([old_codes, fresh_codes]))
+        store["code"][sel] = fresh.code
+        store["lo"][sel] = lo[sel]
+        store["hi"][sel] = hi[sel]
+    code = np.where(fin, store["code"], np.int32(CODE_NOT_IN_TRIAL))
     return Matched(trial_idx=placement.trial_idx, frame=placement.frame, code=code,
                    names_by_trial=names)
 
@@ -476,12 +478,58 @@ def _fixations_digest(fixations: pd.DataFrame) -> str:
 _WORKER: dict = {}
 
 
-def _init_worker(session, placement, settings) -> None:
+def _init_worker(session, placement, settings, shared=None) -> None:
     from ._chunks import single_thread_worker
 
     single_thread_worker()
     _WORKER.clear()
-    _WORKER.update(session=session, placement=placement, settings=settings, cache={})
+    _WORKER.update(session=session, placement=placement, settings=settings,
+                   cache=dict(shared or {}))
+
+
+def _shared_cache(settings: list[Setting], session) -> dict:
+    """Gap filling and I-VT velocity of the first setting's gap filling, for every worker.
+
+    Computed once in the parent; workers inherit it (the pool forks on Linux,
+    elsewhere it is pickled once per worker) instead of each computing it.
+    """
+    from .clean import fill_gaps
+    from .detect import velocity_and_noise
+
+    same_input = [s for s in settings if not s.reload]
+    if not same_input:
+        return {}
+    gap = same_input[0].study.detection.max_gap_ms
+    filled = fill_gaps(session.samples, max_gap_ms=gap, interval_ms=session.interval_ms)
+    cache = {("filled", gap): filled}
+    for s in same_input:
+        det = s.study.detection
+        if det.method != "ivt" or det.max_gap_ms != gap:
+            continue
+        key = ("velocity", det.velocity_window_ms, det.smoothing, det.smoothing_window_ms)
+        if key not in cache:
+            cache[key] = velocity_and_noise(
+                filled, display=s.study.display, window_ms=det.velocity_window_ms,
+                interval_ms=session.interval_ms, smoothing=det.smoothing,
+                smoothing_window_ms=det.smoothing_window_ms)
+    return cache
+
+
+def _lead_setting(settings: list[Setting]) -> int | None:
+    """The first setting of the most common method among those on the same input."""
+    methods = [s.study.detection.method for s in settings if not s.reload]
+    if not methods:
+        return None
+    common = max(dict.fromkeys(methods), key=methods.count)
+    return next(i for i, s in enumerate(settings)
+                if not s.reload and s.study.detection.method == common)
+
+
+def _cost_rank(setting: Setting) -> int:
+    """Rough relative cost of a setting, to start the costly ones first."""
+    if setting.reload:
+        return 3
+    return {"ivt": 0, "idt": 1}.get(setting.study.detection.method, 2)
 
 
 def _run_in_worker(index: int) -> dict:
@@ -655,9 +703,24 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
         cache: dict = {}
         results = [_evaluate(s, session, placement, cache) for s in settings]
     else:
-        with ProcessPoolExecutor(max_workers=n_jobs, initializer=_init_worker,
-                                 initargs=(session, placement, settings)) as pool:
-            results = list(pool.map(_run_in_worker, range(len(settings))))
+        # work every setting shares is done once, before the workers fork; the costly
+        # settings go first so that the workers finish together
+        # The first setting of the most common method runs here, on all threads: its
+        # AOI codes per fixation (most fixations recur in similar settings) go to
+        # every worker with the gap filling and velocity.
+        shared = _shared_cache(settings, session)
+        results = [None] * len(settings)
+        lead = _lead_setting(settings)
+        if lead is not None:
+            results[lead] = _evaluate(settings[lead], session, placement, shared)
+        rest = sorted((i for i in range(len(settings)) if i != lead),
+                      key=lambda i: (-_cost_rank(settings[i]), i))
+        with ProcessPoolExecutor(max_workers=min(n_jobs, max(len(rest), 1)),
+                                 initializer=_init_worker,
+                                 initargs=(session, placement, settings, shared)) as pool:
+            futures = {i: pool.submit(_run_in_worker, i) for i in rest}
+            for i, f in futures.items():
+                results[i] = f.result()
 
     sizes = [len(r["summary"]) for r in results]
     summary = pd.concat([_key_columns(settings, sizes),

@@ -157,9 +157,24 @@ def check_quality(checks: pd.DataFrame, samples: pd.DataFrame, fixations: pd.Dat
     f_off = fixations["offset_ms"].to_numpy(float)
     fx = fixations["x_px"].to_numpy(float)
     fy = fixations["y_px"].to_numpy(float)
+    f_start = fixations["start_row"].to_numpy(np.int64)
+    f_end = fixations["end_row"].to_numpy(np.int64)
+    f_number = fixations["fixation"].to_numpy(np.int64)
+    # the fixations overlapping each check in time: a range of the table when it is in
+    # time order (every detector's is), so each check looks at a few fixations only
+    c_on = checks["onset_ms"].to_numpy(float)
+    c_off = checks["offset_ms"].to_numpy(float)
+    if len(f_on) < 2 or (bool(np.all(np.diff(f_on) >= 0)) and bool(np.all(np.diff(f_off) >= 0))):
+        f_lo = np.searchsorted(f_off, c_on, side="right")
+        f_hi = np.searchsorted(f_on, c_off, side="left")
+    else:
+        f_lo = np.zeros(len(checks), dtype=np.int64)
+        f_hi = np.full(len(checks), len(f_on), dtype=np.int64)
+    s_a = np.searchsorted(t, c_on, side="left")
+    s_b = np.searchsorted(t, c_off, side="left")
     rows = []
-    for r in checks.itertuples(index=False):  # a loop over checks
-        a, b = np.searchsorted(t, [r.onset_ms, r.offset_ms], side="left")
+    for k, r in enumerate(checks.itertuples(index=False)):  # a loop over checks
+        a, b = int(s_a[k]), int(s_b[k])
         n = int(b - a)
         loss = float(1.0 - valid[a:b].mean()) if n else float("nan")
         rec = {"check": r.check, "onset_ms": r.onset_ms, "offset_ms": r.offset_ms,
@@ -168,13 +183,14 @@ def check_quality(checks: pd.DataFrame, samples: pd.DataFrame, fixations: pd.Dat
                "accuracy_deg": np.nan, "offset_x_deg": np.nan, "offset_y_deg": np.nan,
                "precision_rms_deg": np.nan, "precision_std_deg": np.nan,
                "status": "no data" if n == 0 or loss == 1.0 else "no fixation"}
-        overlap = np.minimum(f_off, r.offset_ms) - np.maximum(f_on, r.onset_ms)
-        dist = geometry.angle_between_deg(fx, fy, r.x_px, r.y_px, display)
+        lo, hi = int(f_lo[k]), max(int(f_hi[k]), int(f_lo[k]))
+        overlap = np.minimum(f_off[lo:hi], r.offset_ms) - np.maximum(f_on[lo:hi], r.onset_ms)
+        dist = geometry.angle_between_deg(fx[lo:hi], fy[lo:hi], r.x_px, r.y_px, display)
         cand = np.flatnonzero((overlap > 0) & (dist <= max_offset_deg))
         if len(cand) and rec["status"] != "no data":
-            best = cand[np.lexsort((dist[cand], -overlap[cand]))[0]]
-            s0 = max(int(fixations["start_row"].iat[best]), a)
-            s1 = min(int(fixations["end_row"].iat[best]), b)
+            best = lo + cand[np.lexsort((dist[cand], -overlap[cand]))[0]]
+            s0 = max(int(f_start[best]), a)
+            s1 = min(int(f_end[best]), b)
             use = valid[s0:s1]
             gx, gy = x[s0:s1][use], y[s0:s1][use]
             if len(gx):
@@ -182,7 +198,7 @@ def check_quality(checks: pd.DataFrame, samples: pd.DataFrame, fixations: pd.Dat
                 axg, ayg = geometry.px_to_deg(mx, my, display)
                 axt, ayt = geometry.px_to_deg(r.x_px, r.y_px, display)
                 rms, std = precision_deg(gx, gy, display)
-                rec.update(fixation=int(fixations["fixation"].iat[best]), gaze_x_px=mx,
+                rec.update(fixation=int(f_number[best]), gaze_x_px=mx,
                            gaze_y_px=my,
                            accuracy_deg=float(geometry.angle_between_deg(mx, my, r.x_px, r.y_px,
                                                                          display)),

@@ -364,3 +364,24 @@ def test_simulated_checks_all_usable(drifting):
     # accuracy grows with the drift (0 at the start, 3 deg at the end)
     assert np.all(np.diff(cq["accuracy_deg"].to_numpy()) > 0)
     assert cq["accuracy_deg"].iat[0] < 0.5 < 2.0 < cq["accuracy_deg"].iat[-1] < 3.5
+
+
+def test_check_quality_same_for_fixations_in_any_order(tmp_path):
+    # in time order each check looks only at the fixations overlapping it; shuffled, it
+    # scans them all: the same table either way
+    from aoi_fix.pipeline import load_session
+    from aoi_fix.clean import fill_gaps
+    from aoi_fix.detect import detect_filled
+
+    ses = simulate.simulate_session("infant_60hz_noisy", n_trials=4, seed=3)
+    p = simulate.write_session(ses, tmp_path)
+    s = load_session(p["samples"], p["study"], p["trials"], p["aois"], p["checks"])
+    filled = fill_gaps(s.samples, max_gap_ms=s.study.detection.max_gap_ms,
+                       interval_ms=s.interval_ms)
+    fix = detect_filled(filled, display=s.study.display, detection=s.study.detection,
+                        interval_ms=s.interval_ms)
+    in_order = check_quality(s.checks, s.samples, fix, display=s.study.display)
+    shuffled = fix.sample(frac=1.0, random_state=1).reset_index(drop=True)
+    any_order = check_quality(s.checks, s.samples, shuffled, display=s.study.display)
+    pd.testing.assert_frame_equal(in_order, any_order)
+    assert (in_order["status"] == "ok").sum() >= 3

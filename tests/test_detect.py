@@ -373,7 +373,10 @@ def fixation_traces(draw):
 @given(s=fixation_traces(), thr=st.floats(0.1, 2.5), min_q=st.integers(0, 600),
        max_gap=st.sampled_from([0.0, 75.0]), how=st.sampled_from(sorted(IDT_SETTINGS)))
 def test_idt_equals_reference_long_and_many_fixations(s, thr, min_q, max_gap, how):
-    min_ms = min_q * 0.25
+    _assert_idt_equals_reference(s, thr, min_q * 0.25, max_gap, how)
+
+
+def _assert_idt_equals_reference(s, thr, min_ms, max_gap, how):
     interval = nominal_interval_ms(s["t_ms"].to_numpy())
     filled = fill_gaps(s, max_gap_ms=max_gap, interval_ms=interval)
     with _idt_settings(how):
@@ -388,15 +391,7 @@ def test_idt_equals_reference_long_and_many_fixations(s, thr, min_q, max_gap, ho
 @given(s=traces(), thr=st.floats(0.05, 3.0), min_q=st.integers(0, 800),
        max_gap=st.sampled_from([0.0, 20.0, 75.0]), how=st.sampled_from(sorted(IDT_SETTINGS)))
 def test_idt_equals_reference_any_block_and_batch_size(s, thr, min_q, max_gap, how):
-    min_ms = min_q * 0.25
-    interval = nominal_interval_ms(s["t_ms"].to_numpy())
-    filled = fill_gaps(s, max_gap_ms=max_gap, interval_ms=interval)
-    with _idt_settings(how):
-        got = idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
-                  min_fixation_ms=min_ms, interval_ms=interval)
-    ref = reference_idt(filled, display=DISPLAY, dispersion_threshold_deg=thr,
-                        min_fixation_ms=min_ms, interval_ms=interval)
-    assert list(zip(got["start_row"].tolist(), got["end_row"].tolist())) == ref
+    _assert_idt_equals_reference(s, thr, min_q * 0.25, max_gap, how)
 
 
 @pytest.mark.parametrize("how", sorted(IDT_SETTINGS))

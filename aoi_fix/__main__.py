@@ -1,5 +1,5 @@
 """``python -m aoi_fix``."""
 
-from .cli import main
+from .cli import run
 
-main()
+run()

@@ -324,5 +324,38 @@ def main() -> None:  # console-script entry point
     sys.exit(rv if isinstance(rv, int) else 0)
 
 
+def run() -> None:  # console-script entry point
+    """Run :func:`main`, then leave the process without interpreter teardown.
+
+    Arrow's native thread pools can abort a process that is being torn down
+    ("terminate called without an active exception", SIGABRT; apache/arrow
+    issue 34314), intermittently and after all work is done: we saw it once in
+    the bad-input corpus.  A Makefile would take that for a failed conversion.
+    So once ``main`` has finished (outputs published or nothing written), the
+    streams are flushed and the process exits with ``os._exit`` and the same
+    code.  ``main`` itself still raises ``SystemExit`` (tests call it).
+    """
+    import logging
+    import os
+
+    try:
+        main()
+        code = 0
+    except SystemExit as e:
+        code = e.code
+    if code is None:
+        code = 0
+    elif not isinstance(code, int):
+        print(code, file=sys.stderr)
+        code = 1
+    logging.shutdown()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # a closed pipe: nothing more to say
+            pass
+    os._exit(code)
+
+
 if __name__ == "__main__":  # pragma: no cover
-    main()
+    run()

@@ -151,3 +151,22 @@ def test_console_script_version():
     exe = shutil.which("aoi-fix") or str(Path(sys.executable).parent / "aoi-fix")
     r = subprocess.run([exe, "--version"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0 and aoi_fix.__version__ in r.stdout
+
+
+def test_program_exit_codes_and_output_as_a_process(tmp_path):
+    # the console entry leaves with os._exit after flushing (aoi_fix.cli.run): the
+    # output must still arrive and the codes must be main()'s
+    import subprocess
+    import sys as _sys
+
+    ok = subprocess.run([_sys.executable, "-m", "aoi_fix", "--version"], capture_output=True,
+                        text=True)
+    assert ok.returncode == 0 and ok.stdout.strip().startswith("aoi-fix ")
+    usage = subprocess.run([_sys.executable, "-m", "aoi_fix", "--bogus"], capture_output=True,
+                           text=True)
+    assert usage.returncode == 2 and "usage error" in usage.stderr
+    bad = subprocess.run([_sys.executable, "-m", "aoi_fix", "fixations",
+                          str(tmp_path / "missing.csv"), "--study", str(tmp_path / "s.toml"),
+                          "--out", str(tmp_path / "f.csv")], capture_output=True, text=True)
+    assert bad.returncode == 1 and bad.stderr.count("\n") == 1
+    assert not (tmp_path / "f.csv").exists()

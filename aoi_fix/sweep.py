@@ -295,15 +295,14 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     from .summary import CODE_NOT_IN_TRIAL
 
     n = len(fid)
-    if n >= 2**31 - 2:  # row numbers are int32 below
-        raise ValueError("recordings of 2**31 samples or more are not supported")
-    st = fixations["start_row"].to_numpy(np.int32)
-    en = fixations["end_row"].to_numpy(np.int32)
+    rows_t = np.int32 if n < 2**31 - 2**20 else np.int64  # row numbers (and windows)
+    st = fixations["start_row"].to_numpy(rows_t)
+    en = fixations["end_row"].to_numpy(rows_t)
     h = window_half_width(window_ms, session.interval_ms)
     if "code" not in store:
         store.update(code=np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int32),
-                     lo=np.full(n, -1, dtype=np.int32), hi=np.full(n, -1, dtype=np.int32),
-                     row=np.arange(n, dtype=np.int32))
+                     lo=np.full(n, -1, dtype=rows_t), hi=np.full(n, -1, dtype=rows_t),
+                     row=np.arange(n, dtype=rows_t))
     fin = fid >= 0
     f = np.maximum(fid, 0)
     # each fixation sample's window rows [lo, hi); -1 outside fixations
@@ -337,29 +336,6 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     code = np.where(fin, store["code"], np.int32(CODE_NOT_IN_TRIAL))
     return Matched(trial_idx=placement.trial_idx, frame=placement.frame, code=code,
                    names_by_trial=names)
-
-
-def _ranges(starts: np.ndarray, lengths: np.ndarray) -> np.ndarray:
-    """The rows of consecutive ranges ``[start, start + length)``, concatenated.
-
-    One cumulative sum (no per-range loop, no repeat of a row number per row).
-
-    >>> _ranges(np.array([5, 0, 9]), np.array([2, 3, 0])).tolist()
-    [5, 6, 0, 1, 2]
-    """
-    starts = np.asarray(starts, dtype=np.int64)
-    lengths = np.asarray(lengths, dtype=np.int64)
-    keep = lengths > 0
-    starts, lengths = starts[keep], lengths[keep]
-    total = int(lengths.sum())
-    if total == 0:
-        return np.zeros(0, dtype=np.int64)
-    step = np.ones(total, dtype=np.int64)
-    first = np.cumsum(lengths) - lengths  # where each range begins in the output
-    step[0] = starts[0]
-    # at a range's first row, jump from the previous range's last row to its start
-    step[first[1:]] = starts[1:] - (starts[:-1] + lengths[:-1] - 1)
-    return np.cumsum(step, out=step)
 
 
 def _evaluate_by_convert(session) -> dict:

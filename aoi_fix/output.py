@@ -163,7 +163,8 @@ def csv_text(df: pd.DataFrame) -> str | None:
                 return None  # quoting of a carriage return differs between Pythons
             quoted = pc.binary_join_element_wise(
                 '"', pc.replace_substring(arr, '"', '""'), '"', "")
-            arr = pc.if_else(pc.match_substring_regex(arr, '[,"\n]'), quoted, arr)
+            needs = pc.match_substring_regex(arr, "[" + _NEEDS_QUOTES + "]")
+            arr = pc.if_else(needs, quoted, arr)
             columns.append(pc.fill_null(arr, ""))
         else:
             return None

@@ -296,9 +296,7 @@ def per_trial_sums(trial_idx: np.ndarray, n_trials: int, *values) -> list[np.nda
     if n == 0:
         return [np.zeros(n_trials, dtype=np.int64 if v is None or np.asarray(v).dtype.kind
                          in "biu" else float) for v in values]
-    starts = np.flatnonzero(ti[1:] != ti[:-1])
-    starts += 1
-    starts = np.concatenate([np.zeros(1, dtype=starts.dtype), starts])
+    starts = _run_starts(ti)
     run_trial = ti[starts].astype(np.int64)
     keep = run_trial >= 0
     run_trial = run_trial[keep]

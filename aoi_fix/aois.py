@@ -85,6 +85,13 @@ _QUAD_SEGS = 16
 # Above this many frames per stored row the dense frame -> row lookup is
 # replaced by a binary search (very sparse, very long videos).
 _DENSE_MAX_RATIO = 64
+# Cells per side of the grid that classifies each polygon's bounding box
+# (:func:`_cell_grid`), and how many points a call must test per polygon of an
+# AOI before building that grid pays: it costs about as much as testing a few
+# hundred points with GEOS and saves about half the cost of each later point
+# (measured on the benchmark sessions, ``make bench``).
+_GRID_CELLS = 16
+_GRID_MIN_POINTS_PER_POLYGON = 400
 
 
 # --------------------------------------------------------------------------- the table
@@ -93,11 +100,12 @@ class _Track:
     """Geometry of one AOI of one stimulus: fixed, or one polygon per listed frame."""
 
     __slots__ = ("static", "frames", "geoms", "lookup", "median_area", "_buffered", "hold",
-                 "_local")
+                 "_local", "_grids")
 
     def __init__(self, frames: np.ndarray, geoms: np.ndarray, hold: bool = False):
         self.hold = hold  # the last polygon also holds for every later frame (keyframes)
         self._buffered: dict[float, tuple] = {}
+        self._grids: dict[float, tuple] = {}
         self._local = threading.local()
         if frames.size == 1 and frames[0] < 0:
             self.static = geoms[0]
@@ -148,6 +156,23 @@ class _Track:
         self._buffered[margin_px] = out
         return out
 
+    def grid(self, margin_px: float, *, n_points: int = 0):
+        """The :func:`_cell_grid` of the grown polygons, or None.
+
+        Built (once per margin, on the main thread only: it queries the
+        shared prepared polygons) when ``n_points`` points are about to be
+        tested and that is at least ``_GRID_MIN_POINTS_PER_POLYGON`` per
+        polygon; afterwards returned whatever ``n_points`` is.
+        """
+        hit = self._grids.get(margin_px)
+        if hit is not None or threading.current_thread() is not threading.main_thread():
+            return hit
+        geoms = self.buffered(margin_px)[0]
+        if n_points < _GRID_MIN_POINTS_PER_POLYGON * max(len(geoms) - 1, 1):
+            return None
+        out = self._grids[margin_px] = _cell_grid(*self.buffered(margin_px))
+        return out
+
     def geoms_here(self, margin_px: float) -> np.ndarray:
         """The prepared polygons of :meth:`buffered`, as this thread's own copy.
 
@@ -169,6 +194,93 @@ class _Track:
             shapely.prepare(g)
             mine[margin_px] = g
         return g
+
+
+_OUTSIDE, _INSIDE, _EDGE = 0, 1, 2  # cell classes of _cell_grid
+
+
+def _cell_grid(geoms: np.ndarray, minx: np.ndarray, miny: np.ndarray, maxx: np.ndarray,
+               maxy: np.ndarray, cells: int = _GRID_CELLS):
+    """Classify a K x K grid of cells over each polygon's bounding box.
+
+    A cell is ``_EDGE`` when a polygon edge (of any ring) comes within a tiny
+    tolerance of it; every other cell holds no boundary point, so it lies
+    wholly inside or wholly outside the polygon and one test of its centre
+    (one per run of such cells along a grid row, since neighbours without an
+    edge between them share their class) decides it.  A point whose cell is
+    not ``_EDGE`` is then classified by a table look-up; only points in
+    ``_EDGE`` cells are left for the exact GEOS test, so the answer is the
+    same as testing every point (tests compare both).  Rows that are None or
+    have an empty bounding box are all ``_EDGE``.
+
+    A point's cell is ``min(int((x - minx) * sx), K - 1)`` for a point inside
+    the box (and the same with y); the same arithmetic places the edges, and
+    it is monotone in x, so an edge never misses a cell it passes through.
+
+    Returns
+    -------
+    (classes, sx, sy)
+        ``classes``: uint8, shape (rows, K * K), index ``iy * K + ix``;
+        ``sx``, ``sy``: cells per pixel of each row (0 for all-``_EDGE`` rows).
+    """
+    k = int(cells)
+    n = len(geoms)
+    w, h = maxx - minx, maxy - miny
+    real = (geoms != None) & (w > 0) & (h > 0)  # noqa: E711 (element-wise; NaN compares False)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sx = np.where(real, k / np.where(real, w, 1.0), 0.0)
+        sy = np.where(real, k / np.where(real, h, 1.0), 0.0)
+    classes = np.full((n, k, k), _EDGE, dtype=np.uint8)
+    rows = np.flatnonzero(real)
+    if rows.size == 0:
+        return classes.reshape(n, k * k), sx, sy
+    # every edge of every ring, in cell units of its polygon's grid
+    parts, part_row = shapely.get_parts(geoms[rows], return_index=True)
+    rings, ring_part = shapely.get_rings(parts, return_index=True)
+    xy, xy_ring = shapely.get_coordinates(rings, return_index=True)
+    e = np.flatnonzero(xy_ring[1:] == xy_ring[:-1])
+    r = rows[part_row[ring_part[xy_ring[e]]]]
+    fx0 = (xy[e, 0] - minx[r]) * sx[r]
+    fx1 = (xy[e + 1, 0] - minx[r]) * sx[r]
+    fy0 = (xy[e, 1] - miny[r]) * sy[r]
+    fy1 = (xy[e + 1, 1] - miny[r]) * sy[r]
+    # cut long edges into pieces no longer than one cell along either axis
+    m = np.maximum(np.ceil(np.maximum(np.abs(fx1 - fx0), np.abs(fy1 - fy0))), 1).astype(np.int64)
+    j = np.repeat(np.arange(e.size), m)
+    step = np.arange(j.size) - np.repeat(np.cumsum(m) - m, m)
+    t0, t1 = step / m[j], (step + 1) / m[j]
+    dx, dy = (fx1 - fx0)[j], (fy1 - fy0)[j]
+    ax0, ax1 = fx0[j] + dx * t0, fx0[j] + dx * t1
+    ay0, ay1 = fy0[j] + dy * t0, fy0[j] + dy * t1
+    # cells each piece may touch, widened by far more than the rounding above
+    tol = 1e-6
+    lo_x = np.clip(np.floor(np.minimum(ax0, ax1) - tol), 0, k - 1).astype(np.int64)
+    hi_x = np.clip(np.floor(np.maximum(ax0, ax1) + tol), 0, k - 1).astype(np.int64)
+    lo_y = np.clip(np.floor(np.minimum(ay0, ay1) - tol), 0, k - 1).astype(np.int64)
+    hi_y = np.clip(np.floor(np.maximum(ay0, ay1) + tol), 0, k - 1).astype(np.int64)
+    rj = r[j]
+    edge = np.zeros((n, k, k), dtype=bool)
+    edge[~real] = True
+    for ox in range(3):  # a piece spans at most 3 cells per axis (1 cell + tolerance)
+        for oy in range(3):
+            ix, iy = lo_x + ox, lo_y + oy
+            ok = (ix <= hi_x) & (iy <= hi_y)
+            edge[rj[ok], iy[ok], ix[ok]] = True
+    # runs of edge-free cells along each grid row: one centre test per run
+    free = ~edge.reshape(n * k, k)
+    start = free.copy()
+    start[:, 1:] &= ~free[:, :-1]
+    first = np.flatnonzero(start.ravel())
+    if first.size:
+        fr, fi = np.divmod(first, k * k)  # polygon row, cell within its grid
+        fy, fx = np.divmod(fi, k)
+        inside = shapely.intersects_xy(geoms[fr], minx[fr] + (fx + 0.5) / sx[fr],
+                                       miny[fr] + (fy + 0.5) / sy[fr])
+        run = np.cumsum(start.ravel()) - 1
+        flat = classes.reshape(-1)
+        cells_free = np.flatnonzero(free.ravel())
+        flat[cells_free] = inside[run[cells_free]].astype(np.uint8)
+    return classes.reshape(n, k * k), sx, sy
 
 
 class AoiTable:
@@ -651,7 +763,12 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
     box test in numpy picks candidate points still unassigned, each looked up
     to its frame's polygon through a frame -> polygon table, and one
     ``shapely.intersects_xy`` call over prepared polygons tests all of them.
-    Python loops run over AOIs only, never over points or frames.
+    When a call has many points per polygon (at least
+    ``_GRID_MIN_POINTS_PER_POLYGON``), a 16 x 16 grid of cells over each
+    polygon's box, built once, settles the points in cells without an edge by
+    a table look-up, and only points in edge cells go to GEOS; the answer is
+    the same (tested).  Python loops run over AOIs only, never over points
+    or frames.
 
     Examples
     --------
@@ -688,32 +805,62 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
         track = aois._track(stimulus, name)
         _, minx, miny, maxx, maxy = track.buffered(margin_px)
         geoms = track.geoms_here(margin_px)
+        grid = track.grid(margin_px, n_points=idx.size)
         if track.static is not None:
             cand = ((res < 0) & (xs >= minx[0]) & (xs <= maxx[0])
                     & (ys >= miny[0]) & (ys <= maxy[0]))
             sel = np.flatnonzero(cand)
-            hit = shapely.intersects_xy(geoms[0], xs[sel], ys[sel])
+            r = np.zeros(sel.size, dtype=np.int64) if grid is not None else None
         else:
             rows = track.rows(fs)  # -1 = the None slot, NaN bounds
             cand = ((res < 0) & (xs >= minx.take(rows)) & (xs <= maxx.take(rows))
                     & (ys >= miny.take(rows)) & (ys <= maxy.take(rows)))
             sel = np.flatnonzero(cand)
-            hit = shapely.intersects_xy(geoms.take(rows[sel]), xs[sel], ys[sel])
+            r = rows[sel]
+        if grid is not None:  # cells wholly inside or outside settle most points
+            cls = _grid_class(grid, r, xs[sel], ys[sel], minx, miny)
+            res[sel[cls == _INSIDE]] = rank
+            keep = cls == _EDGE
+            sel, r = sel[keep], r[keep]
+        g = geoms[0] if track.static is not None else geoms.take(r)
+        hit = shapely.intersects_xy(g, xs[sel], ys[sel])
         res[sel[hit]] = rank
     result[idx] = res
     return result.reshape(shape)
 
 
-def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0) -> None:
+def _grid_class(grid, r: np.ndarray, x: np.ndarray, y: np.ndarray, minx: np.ndarray,
+                miny: np.ndarray) -> np.ndarray:
+    """Cell class (``_OUTSIDE``, ``_INSIDE``, ``_EDGE``) of points in row ``r``'s box."""
+    classes, sx, sy = grid
+    k = _GRID_CELLS
+    ix = x - minx.take(r)
+    ix *= sx.take(r)
+    iy = y - miny.take(r)
+    iy *= sy.take(r)
+    ix = np.minimum(ix.astype(np.int64), k - 1)  # >= 0 inside the box; int() floors
+    iy = np.minimum(iy.astype(np.int64), k - 1)
+    iy *= k
+    iy += ix
+    iy += r * (k * k)
+    return classes.reshape(-1).take(iy)
+
+
+def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0,
+                   n_points: int = 0) -> None:
     """Grow, prepare and index every AOI of a stimulus for ``margin_px`` now.
 
     :func:`match_points` does this on first use.  ``shapely.prepare`` writes
     into the geometry objects, so it must happen once, before threads test
     points in parallel (each of them then clones the prepared polygons,
-    :meth:`_Track.geoms_here`).
+    :meth:`_Track.geoms_here`).  ``n_points``: how many points will be
+    tested in all; when that is many per polygon, the cell grid that settles
+    most points without GEOS is built too (threads never build it).
     """
     for name in aois.names(stimulus):
-        aois._track(stimulus, name).buffered(float(margin_px))
+        track = aois._track(stimulus, name)
+        track.buffered(float(margin_px))
+        track.grid(float(margin_px), n_points=int(n_points))
 
 
 def stimulus_check(trials: pd.DataFrame, aois: AoiTable, trials_path, aois_path) -> None:

@@ -241,9 +241,15 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         key = (stim, float(margin_screen_px[0]) * scale)
         group_of_trial[k] = groups.setdefault(key, len(groups))
     group_list = list(groups)
-    for stim, margin_vid in group_list:  # geometry ready before threads share it
+    # samples per group (an upper bound of the points tested): decides whether
+    # building the AOIs' cell grids pays
+    per_trial = np.bincount(trial_idx[trial_idx >= 0], minlength=len(trials))
+    per_group = np.bincount(group_of_trial, weights=per_trial, minlength=len(group_list)) \
+        if len(trials) else np.zeros(len(group_list))
+    for g, (stim, margin_vid) in enumerate(group_list):  # geometry ready before threads
         if stim in stimuli_with_aois:
-            prepare_tracks(session.aois, stim, margin_px=margin_vid)
+            prepare_tracks(session.aois, stim, margin_px=margin_vid,
+                           n_points=int(per_group[g]))
 
     rect, scale = media_rect(trials), video_scale(trials, study.stimuli)
 

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
+from shapely import affinity
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -256,6 +257,96 @@ def test_many_frames_match_a_per_frame_reference():
                 inside = shapely.intersects_xy(g, x[sel], y[sel])
                 want[sel[inside]] = rank
     np.testing.assert_array_equal(got, want)
+
+
+# --------------------------------------------------------------------------- cell grid
+# Large calls classify most points with a per-polygon grid of cells (cells with
+# no edge are wholly inside or outside) and leave only edge cells to GEOS.  The
+# answer must be exactly that of testing every point with shapely.intersects_xy
+# (the general-purpose reference here), including points on edges, on vertices
+# and on the grid's own cell lines.
+
+GRID_SHAPES = [
+    "POLYGON ((10 10, 30 10, 30 30, 10 30, 10 10))",
+    "POLYGON ((50 10, 90 10, 90 50, 50 50, 50 10), (60 20, 80 20, 80 40, 60 40, 60 20))",
+    "POLYGON ((0 0, 80 0, 80 20, 20 20, 20 60, 80 60, 80 80, 0 80, 0 0))",
+    "POLYGON ((50 5, 40 40, 5 45, 38 60, 25 95, 50 70, 75 95, 62 60, 95 45, 60 40, 50 5))",
+    "MULTIPOLYGON (((0 0, 30 0, 15 40, 0 0)), ((40 40, 90 40, 90 90, 40 90, 40 40), "
+    "(50 50, 60 50, 55 70, 50 50)))",
+    "POLYGON ((0 0, 100 0.5, 0 1, 0 0))",                      # a sliver thinner than a cell
+    "POLYGON ((0.1 0.3, 7.7 0.3, 7.7 9.1, 0.1 9.1, 0.1 0.3))",  # edges on the grid's lines
+]
+
+
+def _probe_points(geom, rng, n=4000):
+    """Random points in and around the box, plus vertices, points on edges and
+    points on the lines of a 16-cell grid over the box."""
+    x0, y0, x1, y1 = geom.bounds
+    xs = [rng.uniform(x0 - 2, x1 + 2, n)]
+    ys = [rng.uniform(y0 - 2, y1 + 2, n)]
+    xy = shapely.get_coordinates(shapely.boundary(geom))
+    xs.append(xy[:, 0])
+    ys.append(xy[:, 1])
+    t = rng.uniform(0, 1, len(xy) - 1)
+    xs.append(xy[:-1, 0] + t * (xy[1:, 0] - xy[:-1, 0]))      # on (or a rounding off) edges
+    ys.append(xy[:-1, 1] + t * (xy[1:, 1] - xy[:-1, 1]))
+    gx = x0 + np.arange(17) * ((x1 - x0) / 16)
+    gy = y0 + np.arange(17) * ((y1 - y0) / 16)
+    xs.append(np.repeat(gx, 17))
+    ys.append(np.tile(gy, 17))
+    return np.concatenate(xs), np.concatenate(ys)
+
+
+@pytest.mark.parametrize("wkt", GRID_SHAPES)
+@pytest.mark.parametrize("margin", [0.0, 1.5])
+def test_cell_grid_gives_the_answer_of_testing_every_point(wkt, margin, monkeypatch):
+    from aoi_fix import aois as aois_mod
+
+    geom = shapely.from_wkt(wkt)
+    rng = np.random.default_rng(5)
+    # a moving copy on 3 frames and a fixed copy: both code paths
+    rows = [("s", f, "m", affinity.translate(geom, 3.0 * f, -2.0 * f)) for f in range(3)]
+    rows.append(("s", -1, "z", geom))
+    x, y = _probe_points(geom, rng)
+    frame = rng.integers(-1, 3, x.size)
+    for name in ("m", "z"):
+        df = pd.DataFrame([r for r in rows if r[2] == name],
+                          columns=["stimulus", "frame", "aoi", "geometry"])
+        plain = AoiTable(df)
+        gridded = AoiTable(df)
+        monkeypatch.setattr(aois_mod, "_GRID_MIN_POINTS_PER_POLYGON", 0)
+        got = match_points(gridded, "s", frame, x, y, margin_px=margin)
+        assert gridded._track("s", name).grid(margin) is not None     # the grid was used
+        monkeypatch.setattr(aois_mod, "_GRID_MIN_POINTS_PER_POLYGON", 10 ** 12)
+        want = match_points(plain, "s", frame, x, y, margin_px=margin)
+        assert plain._track("s", name).grid(margin) is None
+        np.testing.assert_array_equal(got, want)
+        assert (got == 0).sum() > 100 and (got == -1).sum() > 100
+
+
+def test_cell_grid_classes_against_matplotlib():
+    # cells the grid calls inside (outside) have their four corners and centre
+    # inside (outside) per matplotlib.path, an independent point-in-polygon code
+    from matplotlib.path import Path as MplPath
+
+    from aoi_fix.aois import _EDGE, _INSIDE, _OUTSIDE, _cell_grid
+
+    geom = shapely.from_wkt(GRID_SHAPES[3])                   # the concave star
+    g = np.array([geom, None], dtype=object)
+    b = shapely.bounds(g)
+    classes, sx, sy = _cell_grid(g, *(b[:, k].copy() for k in range(4)))
+    assert (classes[1] == _EDGE).all()                        # the None slot
+    k = 16
+    iy, ix = np.divmod(np.arange(k * k), k)
+    x0, y0 = b[0, 0], b[0, 1]
+    path = MplPath(np.asarray(geom.exterior.coords))
+    for cls, want in ((_INSIDE, True), (_OUTSIDE, False)):
+        sel = classes[0] == cls
+        assert sel.sum() > 10
+        for fx, fy in ((0.5, 0.5), (0.01, 0.01), (0.99, 0.01), (0.01, 0.99), (0.99, 0.99)):
+            px = x0 + (ix[sel] + fx) / sx[0]
+            py = y0 + (iy[sel] + fy) / sy[0]
+            assert (path.contains_points(np.c_[px, py]) == want).all()
 
 
 ROWS = (FIXTURES / "shapes.csv").read_text().splitlines()[1:]

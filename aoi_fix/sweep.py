@@ -299,11 +299,24 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     st = fixations["start_row"].to_numpy(rows_t)
     en = fixations["end_row"].to_numpy(rows_t)
     h = window_half_width(window_ms, session.interval_ms)
-    if "code" not in store:
-        store.update(code=np.full(n, CODE_NOT_IN_TRIAL, dtype=np.int32),
-                     lo=np.full(n, -1, dtype=rows_t), hi=np.full(n, -1, dtype=rows_t),
-                     row=np.arange(n, dtype=rows_t))
     fin = fid >= 0
+    if "code" not in store:
+        # nothing known yet: every fixation sample is matched, by convert's own path
+        xm, ym = fixation_average(filled, fixations, window_ms=window_ms,
+                                  interval_ms=session.interval_ms, fid=fid)
+        first = match_session(session, x_px=xm, y_px=ym, rows=fin, base=placement)
+        del xm, ym
+        row = np.arange(n, dtype=rows_t)
+        f = np.maximum(fid, 0)
+        lo = row - h
+        np.maximum(lo, st.take(f), out=lo)
+        hi = row + (h + 1)
+        np.minimum(hi, en.take(f), out=hi)
+        del f
+        lo[~fin] = -1
+        hi[~fin] = -1
+        store.update(code=first.code.copy(), lo=lo, hi=hi, row=row)
+        return first
     f = np.maximum(fid, 0)
     # each fixation sample's window rows [lo, hi); -1 outside fixations
     lo = store["row"] - h

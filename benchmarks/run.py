@@ -15,7 +15,7 @@ two sizes and measures, as whole child processes in the same run:
 
 Ratios use the marginal cost per sample, (t_big - t_small) / (n_big - n_small),
 so interpreter start-up and imports do not hide the real cost.  Each time is the
-best of three runs (two for the sweep), the small and big runs of a command
+best of five runs (three for the sweep), the small and big runs of a command
 alternating: on shared virtual machines single runs vary by up to 2x, and a slow
 spell must not fall on one size only.  A cProfile of
 ``convert`` on the largest case goes to ``benchmarks/out/profile_convert.txt``.
@@ -98,7 +98,7 @@ def naive_loop_seconds_per_sample(paths: dict, n_sub: int = 20000) -> float:
     sel = np.flatnonzero((tr >= 0) & np.isfinite(xv))[:n_sub]
     names = sorted(aois["aoi"].unique())
     best = float("inf")
-    for _ in range(3):  # best of three, as for the commands
+    for _ in range(3):  # best of three
         t0 = time.perf_counter()
         labels = []
         for i in sel:  # the naive per-sample loop this benchmark compares against
@@ -153,7 +153,7 @@ def main(argv=None) -> int:
     # of each (command, size) counts.
     cmds = {label: commands(label) for label in res}
     for key in cmds["small"]:
-        repeat = 2 if key == "sweep" else 3
+        repeat = 3 if key == "sweep" else 5
         runs = {label: [] for label in res}
         for _ in range(repeat):
             for label in res:

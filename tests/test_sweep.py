@@ -319,3 +319,29 @@ def test_build_settings_typed_values_and_lists(session):
     assert not any(x.reload for x in s)
     r = build_settings(base, {"display.distance_mm": [550, 650]})
     assert all(x.reload for x in r) and r[1].study.display.distance_mm == 650.0
+
+
+def test_task_groups_keep_threshold_neighbours_together(session):
+    # worker tasks: every setting once; I-VT settings equal but for the velocity
+    # threshold in one task, lowest threshold first; no task above the cap
+    from aoi_fix.sweep import _task_groups
+
+    base = load_study(session["study"])
+    s = build_settings(base, parse_grid(["detection.method=ivt,idt",
+                                         "detection.velocity_threshold_deg_s=45,20,30",
+                                         "detection.min_fixation_ms=60,100",
+                                         "detection.dispersion_threshold_deg=1.0"]))
+    rest = list(range(1, len(s)))
+    tasks = _task_groups(s, rest, 2)
+    assert sorted(i for t in tasks for i in t) == rest
+    cap = -(-len(rest) // 2)
+    assert all(len(t) <= cap for t in tasks)
+    for t in tasks:
+        studies = [s[i].study.detection for i in t]
+        if studies[0].method == "ivt":
+            assert len({d.min_fixation_ms for d in studies}) == 1
+            thr = [d.velocity_threshold_deg_s for d in studies]
+            assert thr == sorted(thr)
+        else:
+            assert len(t) == 1
+    assert max(len(t) for t in tasks) == 3      # 20, 30, 45 deg/s at 100 ms

@@ -15,9 +15,9 @@ two sizes and measures, as whole child processes in the same run:
 
 Ratios use the marginal cost per sample, (t_big - t_small) / (n_big - n_small),
 so interpreter start-up and imports do not hide the real cost.  Each time is the
-best of five runs (three for the sweep), the small and big runs of a command
-alternating: on shared virtual machines single runs vary by up to 2x, and a slow
-spell must not fall on one size only.  A cProfile of
+best of five runs (three for the sweep), taken in rounds that run every command
+at both sizes: on shared virtual machines single runs vary by up to 2x, and a
+slow spell (seconds long) must not fall on one command or one size only.  A cProfile of
 ``convert`` on the largest case goes to ``benchmarks/out/profile_convert.txt``.
 """
 
@@ -148,19 +148,21 @@ def main(argv=None) -> int:
                       "--out-dir", str(folder / "sweep"), "-j", str(args.jobs)],
         }
 
-    # Small and big runs of a command alternate, so that a slow spell of a shared
-    # machine falls on both sizes rather than on one of them; the best of the runs
-    # of each (command, size) counts.
+    # Rounds: each round runs every command once at each size, so that a slow spell
+    # of a shared machine (they last seconds) falls on all commands and both sizes
+    # rather than on every run of one of them; the best run of each (command, size)
+    # counts.  The sweep, the slowest, runs in the first three rounds only.
     cmds = {label: commands(label) for label in res}
-    for key in cmds["small"]:
-        repeat = 3 if key == "sweep" else 5
-        runs = {label: [] for label in res}
-        for _ in range(repeat):
+    runs = {(key, label): [] for key in cmds["small"] for label in res}
+    for rnd in range(5):
+        for key in cmds["small"]:
+            if key == "sweep" and rnd >= 3:
+                continue
             for label in res:
-                runs[label].append(_child(cmds[label][key]))
-        for label in res:
-            res[label][key] = min(r[0] for r in runs[label])
-            res[label][key + "_mb"] = max(r[1] for r in runs[label])
+                runs[key, label].append(_child(cmds[label][key]))
+    for (key, label), rs in runs.items():
+        res[label][key] = min(r[0] for r in rs)
+        res[label][key + "_mb"] = max(r[1] for r in rs)
     for label in res:
         r = res[label]
         print(f"{label}: {r['n']} samples  read {r['read']:.2f}s  fixations(ivt) {r['ivt']:.2f}s  "

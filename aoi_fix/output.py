@@ -152,18 +152,19 @@ def csv_text(df: pd.DataFrame) -> str | None:
         elif dtype == np.bool_:
             columns.append(pa.array(np.where(col.to_numpy(), "True", "False")))
         elif isinstance(dtype, pd.StringDtype) or dtype == object:
+            # labels repeat (trial, stimulus, AOI): quote each distinct one once
             try:
-                arr = pa.array(col.to_numpy(object, na_value=None), type=pa.string(),
-                               from_pandas=True)
-            except (pa.ArrowException, TypeError, ValueError):
+                codes, uniques = pd.factorize(col)
+            except TypeError:
+                return None  # unhashable objects: leave them to pandas
+            uniques = list(uniques)
+            if not all(isinstance(u, str) for u in uniques):
                 return None  # mixed objects: leave them to pandas
-            if pc.any(pc.match_substring(arr, "\r")).as_py():
+            if any("\r" in u for u in uniques):
                 return None  # quoting of a carriage return differs between Pythons
-            quoted = pc.binary_join_element_wise(
-                '"', pc.replace_substring(arr, '"', '""'), '"', "")
-            needs = pc.match_substring_regex(arr, "[" + _NEEDS_QUOTES + "]")
-            arr = pc.if_else(needs, quoted, arr)
-            columns.append(pc.fill_null(arr, ""))
+            codes[codes < 0] = len(uniques)  # missing: an empty field
+            texts = pa.array([_quoted(u) for u in uniques] + [""], type=pa.string())
+            columns.append(texts.take(pa.array(codes)))
         else:
             return None
     header = ",".join(_quoted(str(c)) for c in df.columns) + "\n"

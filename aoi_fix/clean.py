@@ -132,8 +132,8 @@ def window_half_width(window_ms: float, interval_ms: float) -> int:
 
 
 def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms: float,
-                     interval_ms: float, fid: np.ndarray | None = None
-                     ) -> tuple[np.ndarray, np.ndarray]:
+                     interval_ms: float, fid: np.ndarray | None = None,
+                     rows: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Positions for AOI matching: each fixation sample averaged over a window.
 
     For a sample inside a fixation, the mean position of the fixation's
@@ -146,40 +146,54 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
     (trial, AOI) percentages within 3 points of the truth from 0.61 to 1.0.
 
     ``fid`` (:func:`aoi_fix.summary.fixation_of_sample` of these fixations)
-    may be passed when the caller has it already.
+    may be passed when the caller has it already.  With ``rows`` (increasing
+    sample rows; needs ``fid``) only those samples are computed and returned,
+    the same numbers as at those rows of the whole result (threshold sweeps
+    re-average the few samples whose window changed).
 
     >>> f = pd.DataFrame({"x_px": [0., 2, 4, 9], "y_px": [0., 0, 0, 0]})
     >>> fx = pd.DataFrame({"start_row": [0], "end_row": [3]})
     >>> fixation_average(f, fx, window_ms=20, interval_ms=10)[0].tolist()
     [1.0, 2.0, 3.0, 9.0]
+    >>> fid = np.array([0, 0, 0, -1])
+    >>> fixation_average(f, fx, window_ms=20, interval_ms=10, fid=fid,
+    ...                  rows=np.array([1, 3]))[0].tolist()
+    [2.0, 9.0]
     """
-    x_in = filled["x_px"].to_numpy(dtype=float)
-    y_in = filled["y_px"].to_numpy(dtype=float)
-    x, y = x_in.copy(), y_in.copy()
-    n = len(x)
-    if n == 0 or len(fixations) == 0 or window_ms <= 0:
-        return x, y
-    from ._chunks import map_blocks
+    from . import _chunks
     from .summary import fixation_of_sample
 
+    x_in = filled["x_px"].to_numpy(dtype=float)
+    y_in = filled["y_px"].to_numpy(dtype=float)
+    n = len(x_in)
+    if rows is not None:
+        if fid is None:
+            raise ValueError("fixation_average: rows needs fid")
+        rows = np.asarray(rows, dtype=np.int64)
+        x, y = x_in[rows], y_in[rows]
+    else:
+        x, y = x_in.copy(), y_in.copy()
+    if n == 0 or len(fixations) == 0 or window_ms <= 0 or (rows is not None and not rows.size):
+        return x, y
     if fid is None:
         fid = fixation_of_sample(n, fixations)
     st = fixations["start_row"].to_numpy(np.int64)
     en = fixations["end_row"].to_numpy(np.int64)
     h = window_half_width(window_ms, interval_ms)
 
-    def block(a: int, b: int) -> None:  # rows a..b-1; reads the input, writes x, y there
-        i = np.flatnonzero(fid[a:b] >= 0)  # fixation samples, in order
-        if len(i) == 0:
-            return
-        f = fid[a:b][i]
-        i += a
+    def means(a: int, b: int, i: np.ndarray, out_at) -> None:
+        """Window means of fixation rows ``i`` of block ``a..b-1``, written to ``out_at``.
+
+        Prefix sums start at the block's own first window row, so a sample's
+        mean does not depend on which other rows are asked for.
+        """
+        f = fid[i]
         lo = i - h
         np.maximum(lo, st[f], out=lo)
         hi = i + (h + 1)
         np.minimum(hi, en[f], out=hi)
         # every window lies in base..top-1: prefix sums over that stretch only
-        base, top = max(0, a - h), min(n, b + h + 1)
+        base, top = max(0, a - h), int(hi.max())
         lo -= base
         hi -= base
         xs, ys = x_in[base:top], y_in[base:top]
@@ -189,14 +203,30 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
         np.cumsum(ok, out=cn[1:])
         cnt = cn[hi] - cn[lo]
         good = cnt > 0
-        i, lo, hi, cnt = i[good], lo[good], hi[good], cnt[good]
+        at, lo, hi, cnt = out_at[good], lo[good], hi[good], cnt[good]
         c = np.zeros(top - base + 1)
         for v, out in ((xs, x), (ys, y)):  # two coordinates
             np.cumsum(np.where(ok, v, 0.0), out=c[1:])
             m = c[hi]
             m -= c[lo]
             m /= cnt
-            out[i] = m
+            out[at] = m
 
-    map_blocks(block, n)
+    if rows is None:
+        def block(a: int, b: int) -> None:  # rows a..b-1; reads the input, writes x, y there
+            i = np.flatnonzero(fid[a:b] >= 0)  # fixation samples, in order
+            if len(i):
+                i += a
+                means(a, b, i, i)
+
+        _chunks.map_blocks(block, n)
+        return x, y
+    # only the given rows: the blocks they fall in, with the same arithmetic
+    size = _chunks.BLOCK
+    inside = np.flatnonzero(fid[rows] >= 0)
+    cut = np.searchsorted(rows[inside], np.arange(0, n + size, size))
+    for k in np.flatnonzero(np.diff(cut)).tolist():  # a loop over blocks
+        a = k * size
+        at = inside[cut[k]:cut[k + 1]]
+        means(a, min(a + size, n), rows[at], at)
     return x, y

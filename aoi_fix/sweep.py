@@ -333,14 +333,13 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     if len(sel):
         # averaged positions of the fixations holding those samples (the same numbers
         # as for the whole table: the average is computed in fixed blocks of rows)
-        with_miss = np.unique(fid[sel])
-        xm, ym = fixation_average(filled, fixations.iloc[with_miss], window_ms=window_ms,
-                                  interval_ms=session.interval_ms)
+        xm, ym = fixation_average(filled, fixations, window_ms=window_ms,
+                                  interval_ms=session.interval_ms, fid=fid, rows=sel)
         part = dataclasses.replace(
             session, samples=pd.DataFrame({"t_ms": session.samples["t_ms"].to_numpy(float)[sel]}))
         part_base = Matched(trial_idx=placement.trial_idx[sel], frame=placement.frame[sel],
                             code=placement.code[sel], names_by_trial=placement.names_by_trial)
-        fresh = match_session(part, x_px=xm[sel], y_px=ym[sel], base=part_base)
+        fresh = match_session(part, x_px=xm, y_px=ym, base=part_base)
         del xm, ym
         names = fresh.names_by_trial
         store["code"][sel] = fresh.code

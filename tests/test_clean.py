@@ -208,3 +208,26 @@ def test_fixation_average_equals_the_window_mean_by_hand(monkeypatch, block):
                                     window_ms=window, interval_ms=interval)
     np.testing.assert_allclose(got_x, want_x, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(got_y, want_y, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("block", [1, 7, 64, 1 << 17])
+def test_fixation_average_at_rows_is_the_whole_result_at_those_rows(monkeypatch, block):
+    # Sweeps re-average only the samples whose window changed: those numbers must
+    # be bit for bit the ones of the whole computation (same block arithmetic).
+    from aoi_fix import _chunks
+    from aoi_fix.clean import fixation_average
+    from aoi_fix.summary import fixation_of_sample
+
+    rng = np.random.default_rng(12)
+    n = 700
+    f = pd.DataFrame({"x_px": rng.normal(500, 40, n), "y_px": rng.normal(300, 40, n)})
+    f.loc[rng.random(n) < 0.08, ["x_px", "y_px"]] = np.nan
+    fx = pd.DataFrame({"start_row": [3, 50, 51, 300, 690], "end_row": [45, 51, 280, 650, 700]})
+    fid = fixation_of_sample(n, fx)
+    monkeypatch.setattr(_chunks, "BLOCK", block)
+    whole_x, whole_y = fixation_average(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)
+    rows = np.sort(rng.choice(n, 150, replace=False))
+    got_x, got_y = fixation_average(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid, rows=rows)
+    np.testing.assert_array_equal(got_x, whole_x[rows])
+    np.testing.assert_array_equal(got_y, whole_y[rows])
+    assert np.isfinite(got_x).sum() > 100

@@ -215,9 +215,10 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     t = session.samples["t_ms"].to_numpy(float)
     if x_px is None:
         x_px, y_px = _full_interpolation(session.samples)
+    increasing = len(t) < 2 or bool(np.all(t[1:] > t[:-1]))  # a recording's times
     if base is not None:
         trial_idx, frame = base.trial_idx, base.frame
-    elif len(t) < 2 or bool(np.all(t[1:] > t[:-1])):
+    elif increasing:
         trial_idx, frame = placement_sorted(t, trials, study.stimuli)
     else:
         trial_idx = assign_trials(t, trials)
@@ -243,7 +244,11 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     group_list = list(groups)
     # samples per group (an upper bound of the points tested): decides whether
     # building the AOIs' cell grids pays
-    per_trial = np.bincount(trial_idx[trial_idx >= 0], minlength=len(trials))
+    if increasing:  # each trial is one slice of the samples: no full-length temporaries
+        per_trial = (np.searchsorted(t, trials["end_ms"].to_numpy(float))
+                     - np.searchsorted(t, trials["start_ms"].to_numpy(float)))
+    else:
+        per_trial = np.bincount(trial_idx[trial_idx >= 0], minlength=len(trials))
     per_group = np.bincount(group_of_trial, weights=per_trial, minlength=len(group_list)) \
         if len(trials) else np.zeros(len(group_list))
     for g, (stim, margin_vid) in enumerate(group_list):  # geometry ready before threads
@@ -451,6 +456,9 @@ def convert_session(session: Session, *, matched: Matched | None = None,
         if corrected:
             from .quality import correct_positions
             xm, ym = correct_positions(xm, ym, t, model, study.display)
+        # the gap-filled positions are used up: keep only the flags (accounting),
+        # so that matching does not add to the peak memory
+        filled = filled[["filled"]]
         matched = match_session(session, x_px=xm, y_px=ym, rows=fid >= 0, base=matched)
         del xm, ym
     if corrected:

@@ -59,11 +59,13 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
     segment = np.full(n, -1, dtype=np.int32)
     vi = np.flatnonzero(valid)
     if len(vi):
-        missing_ms = t[vi[1:]] - t[vi[:-1]] - interval_ms
+        missing_ms = np.diff(t[vi])
+        missing_ms -= interval_ms
         # a small tolerance absorbs timestamp jitter (common practice: half an interval)
         bridge = missing_ms <= max_gap_ms + 0.5 * interval_ms
+        del missing_ms
         # fill invalid samples lying inside bridged gaps
-        has_holes = (vi[1:] - vi[:-1]) > 1
+        has_holes = np.diff(vi) > 1
         fill_gap = bridge & has_holes
         if fill_gap.any():
             # owner gap of each invalid sample: index of the previous valid sample
@@ -78,13 +80,15 @@ def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -
             x[inv] = x[a] + frac * (x[b] - x[a])
             y[inv] = y[a] + frac * (y[b] - y[a])
             filled[inv] = True
-        # segments: consecutive valid samples joined by bridged gaps
-        seg_of_valid = np.concatenate([[0], np.cumsum(~bridge)])
-        segment[vi] = seg_of_valid
-        inv_f = np.flatnonzero(filled)
-        if len(inv_f):
-            pos = np.searchsorted(vi, inv_f) - 1
-            segment[inv_f] = seg_of_valid[pos]
+        # segments: consecutive valid samples joined by bridged gaps.  A new one
+        # starts at each valid sample after a gap that is not bridged; filled
+        # samples lie inside bridged gaps, so a running count of the starts
+        # numbers them too, and lost samples get -1.
+        starts = np.zeros(n, dtype=np.int32)
+        starts[vi[1:][~bridge]] = 1
+        np.cumsum(starts, out=segment)
+        del starts
+        segment[~(valid | filled)] = -1
     cols = {c: samples[c].to_numpy() for c in samples.columns}
     cols.update(x_px=x, y_px=y, filled=filled, segment=segment)
     return pd.DataFrame(cols, index=samples.index, copy=False)

@@ -213,7 +213,8 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
 
     study, trials = session.study, session.trials
     t = session.samples["t_ms"].to_numpy(float)
-    if x_px is None:
+    testing = rows is None or bool(rows.any())  # else placement only (sweeps)
+    if x_px is None and testing:
         x_px, y_px = _full_interpolation(session.samples)
     increasing = len(t) < 2 or bool(np.all(t[1:] > t[:-1]))  # a recording's times
     if base is not None:
@@ -286,7 +287,8 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
             code[r] = match_points(session.aois, stim, frame[r], xv[sel], yv[sel],
                                    margin_px=margin_vid, priority=study.aois.priority)
 
-    map_blocks(block, len(t))
+    if testing:
+        map_blocks(block, len(t))
     return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)
 
 

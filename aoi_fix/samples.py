@@ -221,18 +221,31 @@ def _chunks_to_numpy(col) -> np.ndarray:
 
     The parser's blocks are copied straight into one preallocated array: one
     copy, where ``ChunkedArray.to_numpy`` would first concatenate them into a
-    read-only Arrow buffer that then needs a second copy to be writable.
+    read-only Arrow buffer that then needs a second copy to be writable.  The
+    blocks are copied on a few threads (:func:`aoi_fix._chunks.threads`):
+    numpy copies without the GIL, and the page faults of the fresh output
+    array, most of the cost, are taken in parallel too.
     """
+    from ._chunks import threads
+
     chunks = [c for c in col.chunks if len(c)]
     if not chunks:
         return np.array(col.to_numpy(), copy=True)
     first = chunks[0].to_numpy(zero_copy_only=False)
     out = np.empty(len(col), dtype=first.dtype)
-    at = 0
-    for k, chunk in enumerate(chunks):  # a loop over the parser's blocks (MBs each)
-        part = first if k == 0 else chunk.to_numpy(zero_copy_only=False)
-        out[at:at + len(part)] = part
-        at += len(part)
+    at = np.concatenate([[0], np.cumsum([len(c) for c in chunks])]).tolist()
+
+    def copy(k: int) -> None:  # one parser block (MBs)
+        out[at[k]:at[k + 1]] = first if k == 0 else chunks[k].to_numpy(zero_copy_only=False)
+
+    n_threads = min(threads(), len(chunks))
+    if n_threads <= 1:
+        for k in range(len(chunks)):  # a loop over the parser's blocks
+            copy(k)
+    else:
+        from concurrent.futures import ThreadPoolExecutor
+        with ThreadPoolExecutor(max_workers=n_threads) as ex:
+            list(ex.map(copy, range(len(chunks))))
     return out
 
 
@@ -346,11 +359,10 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
     else:
         t_ms = t_num.to_numpy(dtype=float) * scale
     if len(t_ms) > 1:
-        step = np.diff(t_ms)
-        back = step <= 0
+        back = t_ms[1:] <= t_ms[:-1]  # a bool per step: no full-size float temporary
         if back.any():
             i = int(np.argmax(back)) + 1
-            what = "repeats" if step[i - 1] == 0 else "goes backwards"
+            what = "repeats" if t_ms[i] == t_ms[i - 1] else "goes backwards"
             raise InputFormatError(
                 f"{source}: line {line_of(i)}, column '{cols.time}': time {what} "
                 f"({t_raw.iloc[i - 1]} then {t_raw.iloc[i]}); expected strictly increasing "

@@ -163,12 +163,13 @@ def _runs(mask: np.ndarray, segment: np.ndarray) -> tuple[np.ndarray, np.ndarray
     n = len(mask)
     if n == 0:
         return np.array([], np.int64), np.array([], np.int64)
-    same = np.concatenate([[False], segment[1:] == segment[:-1]])
-    prev = np.concatenate([[False], mask[:-1]])
-    start = mask & ~(prev & same)
-    nxt_same = np.concatenate([segment[1:] == segment[:-1], [False]])
-    nxt = np.concatenate([mask[1:], [False]])
-    end = mask & ~(nxt & nxt_same)
+    # the run goes on from sample i - 1 to i: both in the mask and in one segment
+    cont = mask[1:] & mask[:-1]
+    cont &= segment[1:] == segment[:-1]
+    start = mask.copy()
+    start[1:] &= ~cont
+    end = mask.copy()
+    end[:-1] &= ~cont
     return np.flatnonzero(start), np.flatnonzero(end) + 1
 
 
@@ -176,7 +177,9 @@ def _arrays(samples: pd.DataFrame):
     t = samples["t_ms"].to_numpy(dtype=float)
     x = samples["x_px"].to_numpy(dtype=float)
     y = samples["y_px"].to_numpy(dtype=float)
-    seg = samples["segment"].to_numpy(dtype=np.int64)
+    seg = samples["segment"].to_numpy()  # int32 from fill_gaps: no 64-bit copy per stage
+    if seg.dtype.kind != "i":
+        seg = seg.astype(np.int64)
     raw_valid = samples["valid"].to_numpy(dtype=bool) & ~samples["filled"].to_numpy(dtype=bool)
     return t, x, y, seg, raw_valid
 

@@ -122,6 +122,40 @@ def _float_text(values: np.ndarray):
     return txt
 
 
+#: Tables with at least this many rows have their columns formatted on a few threads.
+_PARALLEL_ROWS = 20_000
+
+
+def _column_text(col: pd.Series):
+    """One column as CSV fields (an Arrow string array), or None for a type left to pandas."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    dtype = col.dtype
+    if dtype == np.float64:
+        with np.errstate(over="ignore"):  # as pandas: |x| near 1e308 rounds to inf
+            return _float_text(np.round(col.to_numpy(), 6))
+    if dtype in (np.int64, np.int32, np.int16, np.int8, np.uint8, np.uint16, np.uint32):
+        return pc.cast(pa.array(col.to_numpy()), pa.string())
+    if dtype == np.bool_:
+        return pa.array(np.where(col.to_numpy(), "True", "False"))
+    if isinstance(dtype, pd.StringDtype) or dtype == object:
+        # labels repeat (trial, stimulus, AOI): quote each distinct one once
+        try:
+            codes, uniques = pd.factorize(col)
+        except TypeError:
+            return None  # unhashable objects: leave them to pandas
+        uniques = list(uniques)
+        if not all(isinstance(u, str) for u in uniques):
+            return None  # mixed objects: leave them to pandas
+        if any("\r" in u for u in uniques):
+            return None  # quoting of a carriage return differs between Pythons
+        codes[codes < 0] = len(uniques)  # missing: an empty field
+        texts = pa.array([_quoted(u) for u in uniques] + [""], type=pa.string())
+        return texts.take(pa.array(codes))
+    return None
+
+
 def csv_text(df: pd.DataFrame) -> str | None:
     """The CSV text of a table with floats rounded to 6 decimals, or None.
 
@@ -140,33 +174,18 @@ def csv_text(df: pd.DataFrame) -> str | None:
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    columns = []
-    for name in df.columns:
-        col = df[name]
-        dtype = col.dtype
-        if dtype == np.float64:
-            with np.errstate(over="ignore"):  # as pandas: |x| near 1e308 rounds to inf
-                columns.append(_float_text(np.round(col.to_numpy(), 6)))
-        elif dtype in (np.int64, np.int32, np.int16, np.int8, np.uint8, np.uint16, np.uint32):
-            columns.append(pc.cast(pa.array(col.to_numpy()), pa.string()))
-        elif dtype == np.bool_:
-            columns.append(pa.array(np.where(col.to_numpy(), "True", "False")))
-        elif isinstance(dtype, pd.StringDtype) or dtype == object:
-            # labels repeat (trial, stimulus, AOI): quote each distinct one once
-            try:
-                codes, uniques = pd.factorize(col)
-            except TypeError:
-                return None  # unhashable objects: leave them to pandas
-            uniques = list(uniques)
-            if not all(isinstance(u, str) for u in uniques):
-                return None  # mixed objects: leave them to pandas
-            if any("\r" in u for u in uniques):
-                return None  # quoting of a carriage return differs between Pythons
-            codes[codes < 0] = len(uniques)  # missing: an empty field
-            texts = pa.array([_quoted(u) for u in uniques] + [""], type=pa.string())
-            columns.append(texts.take(pa.array(codes)))
-        else:
-            return None
+    from ._chunks import threads
+
+    cols = [df.iloc[:, k] for k in range(df.shape[1])]
+    if len(df) >= _PARALLEL_ROWS and len(cols) > 1 and threads() > 1:
+        # Arrow's kernels and numpy run without the GIL: columns side by side
+        from concurrent.futures import ThreadPoolExecutor
+        with ThreadPoolExecutor(max_workers=min(threads(), len(cols))) as ex:
+            columns = list(ex.map(_column_text, cols))
+    else:
+        columns = [_column_text(c) for c in cols]
+    if any(c is None for c in columns):
+        return None
     header = ",".join(_quoted(str(c)) for c in df.columns) + "\n"
     if len(df) == 0:
         return header

@@ -12,6 +12,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from aoi_fix.config import Display, SampleColumns
 from aoi_fix.errors import AoiFixError, InputFormatError, NoValidSamplesError
@@ -369,3 +371,22 @@ def test_binocular_read_emits_no_deprecation_warning(tmp_path):
     cols = SampleColumns(time="t", x_left="lx", y_left="ly", x_right="rx", y_right="ry")
     got = _read(_write(tmp_path, _text(rows=rows, header=("t", "lx", "ly", "rx", "ry"))), cols)
     assert got["valid"].tolist() == [True, False]
+
+
+@settings(max_examples=200, deadline=None)
+@given(steps=st.lists(st.one_of(st.sampled_from([1.0, 2.0, 2.5, 3.3333333333333335, 8.0]),
+                                st.floats(0.001, 100.0)), min_size=1, max_size=400),
+       sample=st.integers(1, 16), block=st.integers(1, 64))
+def test_median_step_is_numpys_median_of_the_steps(steps, sample, block):
+    # Reference: numpy's median of np.diff (general-purpose library); small
+    # sample and block sizes send most draws through the counting path.
+    import aoi_fix.samples as S
+
+    t = np.cumsum(np.r_[1000.0, steps])
+    old = S._STEP_SAMPLE, S._STEP_BLOCK
+    S._STEP_SAMPLE, S._STEP_BLOCK = sample, block
+    try:
+        got = S.nominal_interval_ms(t)
+    finally:
+        S._STEP_SAMPLE, S._STEP_BLOCK = old
+    assert got == float(np.median(np.diff(t)))

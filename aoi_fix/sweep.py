@@ -315,20 +315,28 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
         del f
         lo[~fin] = -1
         hi[~fin] = -1
-        store.update(code=first.code.copy(), lo=lo, hi=hi, row=row)
+        store.update(code=first.code.copy(), lo=lo, hi=hi)
         return first
-    f = np.maximum(fid, 0)
-    # each fixation sample's window rows [lo, hi); -1 outside fixations
-    lo = store["row"] - h
-    np.maximum(lo, st.take(f), out=lo)
-    hi = store["row"] + (h + 1)
-    np.minimum(hi, en.take(f), out=hi)
-    del f
-    miss = lo != store["lo"]
-    miss |= hi != store["hi"]
-    miss &= fin
-    sel = np.flatnonzero(miss)
-    del miss
+
+    def changed(a: int, b: int) -> np.ndarray:  # rows a..b-1 whose window is not the stored one
+        fb = fid[a:b]
+        f = np.maximum(fb, 0)
+        lo = np.arange(a - h, b - h, dtype=rows_t)
+        np.maximum(lo, st.take(f), out=lo)
+        miss = lo != store["lo"][a:b]
+        hi = np.arange(a + h + 1, b + h + 1, dtype=rows_t)
+        np.minimum(hi, en.take(f), out=hi)
+        miss |= hi != store["hi"][a:b]
+        miss &= fb >= 0
+        return np.flatnonzero(miss) + a
+
+    from ._chunks import map_blocks
+
+    # in blocks: no full-length temporaries per setting
+    sel = np.concatenate(map_blocks(changed, n) or [np.zeros(0, np.int64)])
+    f_sel = fid[sel]
+    lo = np.maximum(sel - h, st.take(f_sel)).astype(rows_t)
+    hi = np.minimum(sel + (h + 1), en.take(f_sel)).astype(rows_t)
     names = placement.names_by_trial
     if len(sel):
         # averaged positions of the fixations holding those samples (the same numbers
@@ -343,8 +351,8 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
         del xm, ym
         names = fresh.names_by_trial
         store["code"][sel] = fresh.code
-        store["lo"][sel] = lo[sel]
-        store["hi"][sel] = hi[sel]
+        store["lo"][sel] = lo
+        store["hi"][sel] = hi
     code = np.where(fin, store["code"], np.int32(CODE_NOT_IN_TRIAL))
     return Matched(trial_idx=placement.trial_idx, frame=placement.frame, code=code,
                    names_by_trial=names)

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["fill_gaps", "smooth_savgol", "fixation_average"]
+__all__ = ["fill_gaps", "smooth_savgol", "fixation_average", "window_rows"]
 
 
 def fill_gaps(samples: pd.DataFrame, *, max_gap_ms: float, interval_ms: float) -> pd.DataFrame:
@@ -135,6 +135,26 @@ def window_half_width(window_ms: float, interval_ms: float) -> int:
     return max(0, int(round(window_ms / (2.0 * interval_ms))))
 
 
+def window_rows(i: np.ndarray, f: np.ndarray, start_row: np.ndarray, end_row: np.ndarray,
+                h: int) -> tuple[np.ndarray, np.ndarray]:
+    """Rows ``[lo, hi)`` of the averaging window of fixation samples ``i``.
+
+    ``f`` is each sample's fixation (index into ``start_row``/``end_row``);
+    the window is ``h`` samples either side, cut at the fixation's ends
+    (:func:`fixation_average`).
+
+    >>> lo, hi = window_rows(np.array([0, 5, 9]), np.array([0, 0, 0]), np.array([0]),
+    ...                      np.array([10]), 2)
+    >>> lo.tolist(), hi.tolist()
+    ([0, 3, 7], [3, 8, 10])
+    """
+    lo = i - h
+    np.maximum(lo, start_row.take(f), out=lo)
+    hi = i + (h + 1)
+    np.minimum(hi, end_row.take(f), out=hi)
+    return lo, hi
+
+
 def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms: float,
                      interval_ms: float, fid: np.ndarray | None = None,
                      rows: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -191,11 +211,7 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
         Prefix sums start at the block's own first window row, so a sample's
         mean does not depend on which other rows are asked for.
         """
-        f = fid[i]
-        lo = i - h
-        np.maximum(lo, st[f], out=lo)
-        hi = i + (h + 1)
-        np.minimum(hi, en[f], out=hi)
+        lo, hi = window_rows(i, fid[i], st, en, h)
         # every window lies in base..top-1: prefix sums over that stretch only
         base, top = max(0, a - h), int(hi.max())
         lo -= base

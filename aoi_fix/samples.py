@@ -512,7 +512,7 @@ def _median_step(t: np.ndarray) -> float:
         return float(np.median(np.diff(t)))
     stride = m // _STEP_SAMPLE
     guess = np.sort(t[stride::stride][:_STEP_SAMPLE] - t[stride - 1:-1:stride][:_STEP_SAMPLE])
-    j = len(guess) // 2
+    j = len(guess) // 2  # the sample's middle, and a range of +-256 sampled steps around it
     lo, hi = guess[max(j - 256, 0)], guess[min(j + 256, len(guess) - 1)]
     below = 0
     kept = []

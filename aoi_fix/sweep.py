@@ -290,7 +290,7 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     rest are averaged and hit-tested on a session cut down to them (hit
     testing is per point).  Other samples get "not in trial", as in ``convert``.
     """
-    from .clean import fixation_average, window_half_width
+    from .clean import fixation_average, window_half_width, window_rows
     from .pipeline import Matched, match_session
     from .summary import CODE_NOT_IN_TRIAL
 
@@ -306,13 +306,7 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
                                   interval_ms=session.interval_ms, fid=fid)
         first = match_session(session, x_px=xm, y_px=ym, rows=fin, base=placement)
         del xm, ym
-        row = np.arange(n, dtype=rows_t)
-        f = np.maximum(fid, 0)
-        lo = row - h
-        np.maximum(lo, st.take(f), out=lo)
-        hi = row + (h + 1)
-        np.minimum(hi, en.take(f), out=hi)
-        del f
+        lo, hi = window_rows(np.arange(n, dtype=rows_t), np.maximum(fid, 0), st, en, h)
         lo[~fin] = -1
         hi[~fin] = -1
         store.update(code=first.code.copy(), lo=lo, hi=hi)
@@ -320,12 +314,8 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
 
     def changed(a: int, b: int) -> np.ndarray:  # rows a..b-1 whose window is not the stored one
         fb = fid[a:b]
-        f = np.maximum(fb, 0)
-        lo = np.arange(a - h, b - h, dtype=rows_t)
-        np.maximum(lo, st.take(f), out=lo)
+        lo, hi = window_rows(np.arange(a, b, dtype=rows_t), np.maximum(fb, 0), st, en, h)
         miss = lo != store["lo"][a:b]
-        hi = np.arange(a + h + 1, b + h + 1, dtype=rows_t)
-        np.minimum(hi, en.take(f), out=hi)
         miss |= hi != store["hi"][a:b]
         miss &= fb >= 0
         return np.flatnonzero(miss) + a
@@ -334,9 +324,7 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
 
     # in blocks: no full-length temporaries per setting
     sel = np.concatenate(map_blocks(changed, n) or [np.zeros(0, np.int64)])
-    f_sel = fid[sel]
-    lo = np.maximum(sel - h, st.take(f_sel)).astype(rows_t)
-    hi = np.minimum(sel + (h + 1), en.take(f_sel)).astype(rows_t)
+    lo, hi = window_rows(sel.astype(rows_t), fid[sel], st, en, h)
     names = placement.names_by_trial
     if len(sel):
         # averaged positions of the fixations holding those samples (the same numbers

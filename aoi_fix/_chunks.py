@@ -25,11 +25,12 @@ from __future__ import annotations
 
 import os
 from concurrent.futures import ThreadPoolExecutor
-from typing import Callable, TypeVar
+from typing import Callable, Sequence, TypeVar
 
 import numpy as np
 
 R = TypeVar("R")
+T = TypeVar("T")
 
 #: Samples per block (a few MB per float64 temporary).
 BLOCK = 1 << 17
@@ -72,12 +73,23 @@ def map_blocks(func: Callable[[int, int], R], n: int, *, size: int | None = None
     >>> map_blocks(fill, 10, size=3), float(out[-1])
     ([3, 3, 3, 1], 18.0)
     """
-    parts = blocks(n, BLOCK if size is None else size)
-    k = min(threads(), len(parts))
+    return map_items(lambda ab: func(*ab), blocks(n, BLOCK if size is None else size))
+
+
+def map_items(func: Callable[[T], R], items: Sequence[T]) -> list[R]:
+    """``[func(x) for x in items]`` on :func:`threads` threads, results in order.
+
+    For independent pieces of GIL-free work (numpy, Arrow kernels) that each
+    write only their own output.
+
+    >>> map_items(len, ["a", "bb", "ccc"])
+    [1, 2, 3]
+    """
+    k = min(threads(), len(items))
     if k <= 1:
-        return [func(a, b) for a, b in parts]
+        return [func(x) for x in items]
     with ThreadPoolExecutor(max_workers=k) as ex:
-        return list(ex.map(lambda ab: func(*ab), parts))
+        return list(ex.map(func, items))
 
 
 def split(idx: np.ndarray, size: int = BLOCK) -> list[np.ndarray]:

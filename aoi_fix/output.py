@@ -174,14 +174,12 @@ def csv_text(df: pd.DataFrame) -> str | None:
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    from ._chunks import threads
+    from ._chunks import map_items
 
     cols = [df.iloc[:, k] for k in range(df.shape[1])]
-    if len(df) >= _PARALLEL_ROWS and len(cols) > 1 and threads() > 1:
+    if len(df) >= _PARALLEL_ROWS:
         # Arrow's kernels and numpy run without the GIL: columns side by side
-        from concurrent.futures import ThreadPoolExecutor
-        with ThreadPoolExecutor(max_workers=min(threads(), len(cols))) as ex:
-            columns = list(ex.map(_column_text, cols))
+        columns = map_items(_column_text, cols)
     else:
         columns = [_column_text(c) for c in cols]
     if any(c is None for c in columns):

@@ -222,11 +222,11 @@ def _chunks_to_numpy(col) -> np.ndarray:
     The parser's blocks are copied straight into one preallocated array: one
     copy, where ``ChunkedArray.to_numpy`` would first concatenate them into a
     read-only Arrow buffer that then needs a second copy to be writable.  The
-    blocks are copied on a few threads (:func:`aoi_fix._chunks.threads`):
+    blocks are copied on a few threads (:func:`aoi_fix._chunks.map_items`):
     numpy copies without the GIL, and the page faults of the fresh output
     array, most of the cost, are taken in parallel too.
     """
-    from ._chunks import threads
+    from ._chunks import map_items
 
     chunks = [c for c in col.chunks if len(c)]
     if not chunks:
@@ -238,14 +238,7 @@ def _chunks_to_numpy(col) -> np.ndarray:
     def copy(k: int) -> None:  # one parser block (MBs)
         out[at[k]:at[k + 1]] = first if k == 0 else chunks[k].to_numpy(zero_copy_only=False)
 
-    n_threads = min(threads(), len(chunks))
-    if n_threads <= 1:
-        for k in range(len(chunks)):  # a loop over the parser's blocks
-            copy(k)
-    else:
-        from concurrent.futures import ThreadPoolExecutor
-        with ThreadPoolExecutor(max_workers=n_threads) as ex:
-            list(ex.map(copy, range(len(chunks))))
+    map_items(copy, range(len(chunks)))
     return out
 
 

@@ -121,14 +121,22 @@ def load_session(samples_path, study, trials_path, aois_path, checks_path=None, 
     from .aois import read_aois, stimulus_check
     from .trials import read_trials
 
+    from concurrent.futures import ThreadPoolExecutor
+
     if not isinstance(study, Study):
         study = _load_study_for(study, samples_path, overrides)
-    samples = read_samples(samples_path, study.samples, study.display)
-    interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
-    trials = read_trials(trials_path, study=study)
-    _trials_meet_recording(trials, samples, trials_path, samples_path,
-                           study.samples.time_unit)
-    aois = read_aois(aois_path, stimuli=study.stimuli)
+    # The trial and AOI tables are read on a side thread while the samples are
+    # parsed (the parse runs in C without the GIL and has idle moments); their
+    # errors are still reported after any error of the samples file.
+    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-side") as side:
+        trials_soon = side.submit(read_trials, trials_path, study=study)
+        aois_soon = side.submit(read_aois, aois_path, stimuli=study.stimuli)
+        samples = read_samples(samples_path, study.samples, study.display)
+        interval = nominal_interval_ms(samples["t_ms"].to_numpy(float), study.samples.rate_hz)
+        trials = trials_soon.result()
+        _trials_meet_recording(trials, samples, trials_path, samples_path,
+                               study.samples.time_unit)
+        aois = aois_soon.result()
     stimulus_check(trials, aois, trials_path, aois_path)
     checks = None
     if checks_path is not None:

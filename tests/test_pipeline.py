@@ -172,6 +172,26 @@ def test_failed_run_writes_nothing_bad_aoi(small, tmp_path):
     assert not out_dir.exists() or list(out_dir.iterdir()) == []
 
 
+def test_error_order_when_several_inputs_are_bad(small, tmp_path):
+    # trials and AOIs are read on a side thread during the samples parse; the
+    # error reported must still be the first in reading order: samples, then
+    # trials, then AOIs (one message per run, the one a user fixes first)
+    bad_samples = tmp_path / "samples.csv"
+    bad_samples.write_text("no,such,columns\n1,2,3\n")
+    bad_trials = tmp_path / "trials.csv"
+    bad_trials.write_text("nothing useful\n")
+    bad_aois = tmp_path / "aois.csv"
+    bad_aois.write_text("nothing useful\n")
+    for kw, culprit in [(dict(samples=bad_samples, trials=bad_trials, aois=bad_aois),
+                         bad_samples),
+                        (dict(trials=bad_trials, aois=bad_aois), bad_trials),
+                        (dict(aois=bad_aois), bad_aois)]:
+        with pytest.raises(AoiFixError) as e:
+            _run(small["paths"], out_dir=tmp_path / "out", **kw)
+        assert str(e.value).startswith(str(culprit)), (culprit, str(e.value))
+        assert not (tmp_path / "out").exists()
+
+
 def test_failed_write_publishes_nothing(small, tmp_path):
     # trial_quality cannot be written (a folder has its name) after fixations and
     # aoi_summary were: none of them may appear, and no temporary file stays

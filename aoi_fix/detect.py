@@ -54,8 +54,14 @@ def _ensure_filled(samples: pd.DataFrame, interval_ms: float) -> pd.DataFrame:
 
 
 def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
-           y: np.ndarray, raw_valid: np.ndarray, interval_ms: float) -> pd.DataFrame:
-    """Fixation table from sample runs [starts, ends)."""
+           y: np.ndarray, raw_valid: np.ndarray, interval_ms: float,
+           known=None) -> pd.DataFrame:
+    """Fixation table from sample runs [starts, ends).
+
+    ``known``: ``(rows, x_px, y_px)``, the mean positions of some runs as this
+    function computed them before for the same samples (a run's mean does not
+    depend on the other runs, :func:`_run_means`); only the others are summed.
+    """
     starts = np.asarray(starts, dtype=np.int64)
     ends = np.asarray(ends, dtype=np.int64)
     n = len(t)
@@ -66,13 +72,16 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
             "duration_ms": pd.Series([], dtype=float), "x_px": pd.Series([], dtype=float),
             "y_px": pd.Series([], dtype=float), "start_row": pd.Series([], dtype="int64"),
             "end_row": pd.Series([], dtype="int64")})
-    mx, cnt = _run_means(starts, ends, x, y, raw_valid)
-    lacking = cnt == 0  # no raw valid sample: mean of the finite (interpolated) ones
-    if lacking.any():
-        k = np.flatnonzero(lacking)
-        mx[k], _ = _run_means(starts[k], ends[k], x, y)
-    my = mx[:, 1]
-    mx = mx[:, 0]
+    if known is None:
+        mx, my = _positions(starts, ends, x, y, raw_valid)
+    else:
+        rows, kx, ky = known
+        mx, my = np.empty(len(starts)), np.empty(len(starts))
+        mx[rows], my[rows] = kx, ky
+        todo = np.ones(len(starts), dtype=bool)
+        todo[rows] = False
+        todo = np.flatnonzero(todo)
+        mx[todo], my[todo] = _positions(starts[todo], ends[todo], x, y, raw_valid)
     onset = t[starts]
     offset = t[ends - 1] + interval_ms
     nxt = np.where(ends < n, t[np.minimum(ends, n - 1)], np.inf)
@@ -83,6 +92,16 @@ def _table(starts: np.ndarray, ends: np.ndarray, t: np.ndarray, x: np.ndarray,
         "x_px": mx, "y_px": my, "start_row": starts, "end_row": ends})
 
 
+def _positions(starts, ends, x, y, raw_valid) -> tuple[np.ndarray, np.ndarray]:
+    """Mean x and y of each run over its raw valid samples (else its finite ones)."""
+    mx, cnt = _run_means(starts, ends, x, y, raw_valid)
+    lacking = cnt == 0  # no raw valid sample: mean of the finite (interpolated) ones
+    if lacking.any():
+        k = np.flatnonzero(lacking)
+        mx[k], _ = _run_means(starts[k], ends[k], x, y)
+    return mx[:, 0].copy(), mx[:, 1].copy()
+
+
 def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarray,
                valid: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Mean (x, y) of each run [start, end) over its samples with a finite position
@@ -90,15 +109,17 @@ def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarra
 
     Runs in time order that do not overlap (every detector's) are summed with
     ``np.add.reduceat`` over groups of runs spanning about one block of
-    samples, so no full-length temporary is made and each run's sum is taken
-    over its own samples only; other runs fall back to prefix sums.
+    samples (on a few threads), so no full-length temporary is made and each
+    run's sum is taken over its own samples only: a run's mean does not depend
+    on which other runs are summed with it.  Other runs fall back to prefix
+    sums.
 
     >>> x = np.array([1., 2, np.nan, 4, 5, 6])
     >>> m, c = _run_means(np.array([0, 3, 5]), np.array([3, 5, 5]), x, x)
     >>> m[:, 0].tolist()[:2], c.tolist()
     ([1.5, 4.5], [2, 2, 0])
     """
-    from ._chunks import BLOCK
+    from ._chunks import BLOCK, map_items
 
     starts = np.asarray(starts, dtype=np.int64)
     ends = np.asarray(ends, dtype=np.int64)
@@ -115,9 +136,11 @@ def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarra
     marks = np.arange(int(st[0]), int(en[-1]), BLOCK)
     cut = np.unique(np.searchsorted(st, marks, side="left"))
     bounds = np.append(cut, len(st)).tolist()
-    for g0, g1 in zip(bounds[:-1], bounds[1:]):  # a loop over groups of runs (blocks)
+
+    def group(g: tuple[int, int]) -> None:  # one group of runs (about one block)
+        g0, g1 = g
         if g1 <= g0:
-            continue
+            return
         a, b = int(st[g0]), int(en[g1 - 1])
         use = np.isfinite(x[a:b])
         use &= np.isfinite(y[a:b])
@@ -135,6 +158,8 @@ def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarra
             for j, v in enumerate((x, y)):  # two coordinates
                 vals = np.where(use, v[a:b], 0.0)
                 out[rows, j] = np.add.reduceat(vals, idx)[0::2] / c
+
+    map_items(group, list(zip(bounds[:-1], bounds[1:])))
     return out, cnt
 
 
@@ -496,15 +521,23 @@ def _refine_edges(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.nda
         return starts, ends
     first = ends[g] - 1  # interval leaving the last fixation sample
     last = starts[g + 1] - 1  # interval entering the next fixation
-    lengths = last - first + 1
+    # the samples first .. last + 1 of every saccade, one after another; the
+    # step from a saccade's last sample to the next saccade's first is junk
+    lengths = last - first + 2
     offsets = np.concatenate([[0], np.cumsum(lengths)[:-1]])
-    idx = np.repeat(first - offsets, lengths) + np.arange(lengths.sum())
-    sp = np.hypot(x[idx + 1] - x[idx], y[idx + 1] - y[idx])  # step of interval i -> i + 1
+    idx = np.repeat(first - offsets, lengths)
+    idx += np.arange(idx.size)
+    sx, sy = x.take(idx), y.take(idx)
+    sp = np.hypot(sx[1:] - sx[:-1], sy[1:] - sy[:-1])  # step of interval i -> i + 1
+    idx = idx[:-1]
+    sp[offsets[1:] - 1] = -np.inf  # the junk steps: never the peak, never fast
     peak = np.maximum.reduceat(sp, offsets)
-    fast = sp >= rel_step * np.repeat(peak, lengths)
+    fast = sp >= rel_step * np.repeat(peak, lengths)[:-1]
     big = np.iinfo(np.int64).max
     first_fast = np.minimum.reduceat(np.where(fast, idx, big), offsets)
     last_fast = np.maximum.reduceat(np.where(fast, idx, -1), offsets)
+    some = last_fast >= 0  # else a NaN step (not in gap-filled segments): no change
+    g, first_fast, last_fast = g[some], first_fast[some], last_fast[some]
     ends = ends.copy()
     starts = starts.copy()
     ends[g] = np.maximum(ends[g], first_fast + 1)
@@ -964,6 +997,19 @@ def merge_and_discard(fixations: pd.DataFrame, samples: pd.DataFrame, *, display
     ``min_fixation_ms`` are then discarded (common practice; REFERENCES.md,
     post-processing conventions).
     """
+    return _merge_and_discard(fixations, samples, display=display,
+                              merge_max_gap_ms=merge_max_gap_ms,
+                              merge_max_angle_deg=merge_max_angle_deg,
+                              min_fixation_ms=min_fixation_ms, interval_ms=interval_ms)
+
+
+def _merge_and_discard(fixations: pd.DataFrame, samples: pd.DataFrame, *, display: "Display",
+                       merge_max_gap_ms: float, merge_max_angle_deg: float,
+                       min_fixation_ms: float, interval_ms: float | None,
+                       means_are_ours: bool = False) -> pd.DataFrame:
+    """:func:`merge_and_discard`; ``means_are_ours``: the table's ``x_px, y_px``
+    come from :func:`_table` over these samples (a detector's output), so runs
+    that no merge changes keep them instead of being summed again."""
     t_all = samples["t_ms"].to_numpy(dtype=float)
     if interval_ms is None:
         interval_ms = nominal_interval_ms(t_all)
@@ -971,6 +1017,10 @@ def merge_and_discard(fixations: pd.DataFrame, samples: pd.DataFrame, *, display
     t, x, y, seg, raw_valid = _arrays(s)
     starts = fixations["start_row"].to_numpy(dtype=np.int64)
     ends = fixations["end_row"].to_numpy(dtype=np.int64)
+    known = None
+    if means_are_ours and len(starts):
+        known = (np.arange(len(starts)), fixations["x_px"].to_numpy(float),
+                 fixations["y_px"].to_numpy(float))
     if len(starts) > 1 and merge_max_angle_deg > 0:
         fx = fixations["x_px"].to_numpy(float)
         fy = fixations["y_px"].to_numpy(float)
@@ -978,13 +1028,15 @@ def merge_and_discard(fixations: pd.DataFrame, samples: pd.DataFrame, *, display
         same_seg = seg[starts[1:]] == seg[ends[:-1] - 1]
         ang = geometry.angle_between_deg(fx[:-1], fy[:-1], fx[1:], fy[1:], display)
         join = same_seg & (gap <= merge_max_gap_ms) & (ang <= merge_max_angle_deg)
-        group = np.concatenate([[0], np.cumsum(~join)])
         first = np.concatenate([[True], ~join])
         lastm = np.concatenate([~join, [True]])
         starts = starts[first]
         ends = ends[lastm]
-        del group
-    out = _table(starts, ends, t, x, y, raw_valid, interval_ms)
+        if known is not None:  # runs no merge joined keep their means
+            alone = np.flatnonzero(lastm[first])  # the new run is one old run
+            old = np.flatnonzero(first)[alone]
+            known = (alone, known[1][old], known[2][old])
+    out = _table(starts, ends, t, x, y, raw_valid, interval_ms, known=known)
     keep = out["duration_ms"].to_numpy() >= min_fixation_ms - 1e-9
     out = out[keep].reset_index(drop=True)
     out["fixation"] = np.arange(1, len(out) + 1, dtype=np.int64)
@@ -1039,11 +1091,11 @@ def detect_filled(filled: pd.DataFrame, *, display: "Display", detection: "Detec
                   smoothing=detection.smoothing,
                   smoothing_window_ms=detection.smoothing_window_ms,
                   interval_ms=interval_ms, velocity=velocity)
-    return merge_and_discard(raw, filled, display=display,
-                             merge_max_gap_ms=detection.merge_max_gap_ms,
-                             merge_max_angle_deg=detection.merge_max_angle_deg,
-                             min_fixation_ms=detection.min_fixation_ms,
-                             interval_ms=interval_ms)
+    return _merge_and_discard(raw, filled, display=display,
+                              merge_max_gap_ms=detection.merge_max_gap_ms,
+                              merge_max_angle_deg=detection.merge_max_angle_deg,
+                              min_fixation_ms=detection.min_fixation_ms,
+                              interval_ms=interval_ms, means_are_ours=True)
 
 
 def detect_fixations(samples: pd.DataFrame, *, display: "Display", detection: "Detection",

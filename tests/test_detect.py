@@ -626,3 +626,68 @@ def test_run_means_by_groups_equal_prefix_sums(monkeypatch, block):
             assert cnt[k] == len(sel)
             if len(sel):
                 assert got[k, 0] == pytest.approx(np.mean(x[sel]), rel=1e-12)
+
+
+def _refine_reference(starts, ends, x, y, seg, rel_step=0.1):
+    """Edge refinement one saccade at a time, from its definition (a plain loop)."""
+    starts, ends = starts.copy(), ends.copy()
+    for k in range(len(starts) - 1):
+        s1, e0 = starts[k + 1], ends[k]
+        if not (seg[s1] == seg[e0 - 1] and s1 > e0):
+            continue
+        steps = [(i, math.hypot(x[i + 1] - x[i], y[i + 1] - y[i])) for i in range(e0 - 1, s1)]
+        peak = max(v for _, v in steps)
+        if math.isnan(peak) or any(math.isnan(v) for _, v in steps):
+            continue  # a NaN step: no step counts as fast
+        fast = [i for i, v in steps if v >= rel_step * peak]
+        ends[k] = max(ends[k], fast[0] + 1)
+        starts[k + 1] = min(starts[k + 1], fast[-1] + 1)
+    return starts, ends
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_refine_edges_equals_one_saccade_at_a_time(seed):
+    # the vectorised refinement (all saccades in one pass) against the same
+    # rule applied to each saccade in a Python loop; NaN steps included
+    from aoi_fix.detect import _refine_edges, _runs
+
+    rng = np.random.default_rng(seed)
+    n = 3000
+    x = np.cumsum(rng.normal(0, 1, n))
+    y = np.cumsum(rng.normal(0, 1, n))
+    if seed % 2:
+        x[rng.random(n) < 0.01] = np.nan
+    seg = np.cumsum(rng.random(n) < 0.01).astype(np.int32)
+    seg[rng.random(n) < 0.01] = -1
+    starts, ends = _runs(rng.random(n) < 0.7, seg)
+    got = _refine_edges(starts, ends, x, y, seg)
+    want = _refine_reference(starts, ends, x, y, seg)
+    np.testing.assert_array_equal(got[0], want[0])
+    np.testing.assert_array_equal(got[1], want[1])
+    assert (got[1] != ends).any()  # the rule moved some edges
+
+
+@pytest.mark.parametrize("method", ["ivt", "idt"])
+def test_merge_reusing_detector_means_equals_recomputing(method):
+    # detect_filled keeps the detector's means for runs no merge changes; the
+    # public merge_and_discard sums every run again: the tables must be equal,
+    # bit for bit
+    from aoi_fix.detect import detect_filled
+
+    rng = np.random.default_rng(3)
+    n = 6000
+    t = np.arange(n) * (1000 / 300)
+    x = np.repeat(rng.uniform(100, 900, n // 60), 60) + rng.normal(0, 2, n)
+    y = np.repeat(rng.uniform(100, 900, n // 60), 60) + rng.normal(0, 2, n)
+    x[rng.random(n) < 0.03] = np.nan
+    det = Detection(method=method, merge_max_angle_deg=2.0, merge_max_gap_ms=100.0)
+    filled = fill_gaps(_samples(t, x, y), max_gap_ms=det.max_gap_ms, interval_ms=1000 / 300)
+    got = detect_filled(filled, display=DISPLAY, detection=det, interval_ms=1000 / 300)
+    raw = (ivt(filled, display=DISPLAY, interval_ms=1000 / 300) if method == "ivt" else
+           idt(filled, display=DISPLAY, min_fixation_ms=det.min_fixation_ms,
+               interval_ms=1000 / 300))
+    want = merge_and_discard(raw, filled, display=DISPLAY, merge_max_gap_ms=100.0,
+                             merge_max_angle_deg=2.0, min_fixation_ms=det.min_fixation_ms,
+                             interval_ms=1000 / 300)
+    assert len(want) < len(raw)  # some runs were merged
+    pd.testing.assert_frame_equal(got, want, check_exact=True)

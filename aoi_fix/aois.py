@@ -156,16 +156,21 @@ class _Track:
         self._buffered[margin_px] = out
         return out
 
-    def grid(self, margin_px: float, *, n_points: int = 0):
+    def grid(self, margin_px: float, *, n_points: int = 0, build: bool | None = None):
         """The :func:`_cell_grid` of the grown polygons, or None.
 
-        Built (once per margin, on the main thread only: it queries the
-        shared prepared polygons) when ``n_points`` points are about to be
+        Built (once per margin) when ``n_points`` points are about to be
         tested and that is at least ``_GRID_MIN_POINTS_PER_POLYGON`` per
-        polygon; afterwards returned whatever ``n_points`` is.
+        polygon; afterwards returned whatever ``n_points`` is.  Building
+        queries the shared prepared polygons, so by default only the main
+        thread builds; ``build=True`` (:func:`prepare_tracks`) lets the
+        calling thread build, for a caller sure that no other thread uses
+        this track meanwhile.
         """
         hit = self._grids.get(margin_px)
-        if hit is not None or threading.current_thread() is not threading.main_thread():
+        if build is None:
+            build = threading.current_thread() is threading.main_thread()
+        if hit is not None or not build:
             return hit
         geoms = self.buffered(margin_px)[0]
         if n_points < _GRID_MIN_POINTS_PER_POLYGON * max(len(geoms) - 1, 1):
@@ -855,12 +860,14 @@ def prepare_tracks(aois: AoiTable, stimulus: str, *, margin_px: float = 0.0,
     points in parallel (each of them then clones the prepared polygons,
     :meth:`_Track.geoms_here`).  ``n_points``: how many points will be
     tested in all; when that is many per polygon, the cell grid that settles
-    most points without GEOS is built too (threads never build it).
+    most points without GEOS is built too (by the calling thread, which may
+    be a side thread: nothing else may use these AOIs until this returns;
+    the threads of :func:`match_points` never build it).
     """
     for name in aois.names(stimulus):
         track = aois._track(stimulus, name)
         track.buffered(float(margin_px))
-        track.grid(float(margin_px), n_points=int(n_points))
+        track.grid(float(margin_px), n_points=int(n_points), build=True)
 
 
 def stimulus_check(trials: pd.DataFrame, aois: AoiTable, trials_path, aois_path) -> None:

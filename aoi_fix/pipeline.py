@@ -15,7 +15,8 @@ from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_file, sha256_soon, ta
 from .samples import nominal_interval_ms, read_samples
 
 __all__ = ["fixations_table", "fixations_from_file", "FIXATION_OUTPUT_COLUMNS", "convert",
-           "load_session", "match_session", "convert_session", "write_outputs"]
+           "load_session", "match_session", "place_samples", "convert_session",
+           "write_outputs"]
 
 FIXATION_OUTPUT_COLUMNS = ["trial", "fixation", "onset_ms", "offset_ms", "duration_ms",
                            "x_px", "y_px", "aoi"]
@@ -300,6 +301,20 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     return Matched(trial_idx=trial_idx, frame=frame, code=code, names_by_trial=names_by_trial)
 
 
+def place_samples(session: Session) -> Matched:
+    """Trial and video frame of every sample, with the AOIs made ready for testing.
+
+    :func:`match_session` without hit tests (every code
+    ``CODE_NOT_IN_TRIAL``): the placement depends on sample times, trials
+    and videos only, so it can be computed before detection (``convert``
+    does so on a side thread, ``sweep`` once for all settings) and passed as
+    ``base``.  The AOI polygons of every (video, scale) group are grown,
+    prepared and given their cell grids here, so that later matching finds
+    them built; nothing else may use ``session.aois`` until this returns.
+    """
+    return match_session(session, rows=np.zeros(len(session.samples), dtype=bool))
+
+
 def _boundaries(trials: pd.DataFrame) -> np.ndarray:
     return np.unique(np.r_[trials["start_ms"].to_numpy(float), trials["end_ms"].to_numpy(float)])
 
@@ -432,15 +447,23 @@ def convert_session(session: Session, *, matched: Matched | None = None,
 
     Returns a dict of the output tables plus ``manifest`` (a JSON-able dict).
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     from . import __version__
     from .clean import fill_gaps
     from .detect import detect_filled
 
     study = session.study
-    filled = fill_gaps(session.samples, max_gap_ms=study.detection.max_gap_ms,
-                       interval_ms=session.interval_ms)
-    fixations = detect_filled(filled, display=study.display, detection=study.detection,
-                              interval_ms=session.interval_ms)
+    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-place") as side:
+        # placement and AOI preparation do not depend on detection: a side
+        # thread does them meanwhile (detection leaves a core idle at times)
+        placed = side.submit(place_samples, session) if matched is None else None
+        filled = fill_gaps(session.samples, max_gap_ms=study.detection.max_gap_ms,
+                           interval_ms=session.interval_ms)
+        fixations = detect_filled(filled, display=study.display, detection=study.detection,
+                                  interval_ms=session.interval_ms)
+        if placed is not None:
+            matched = placed.result()
     check_table = None
     model = None
     if session.checks is not None:
@@ -452,7 +475,7 @@ def convert_session(session: Session, *, matched: Matched | None = None,
     corrected = bool(study.quality.correct_offset and model is not None)
     window = study.aois.position_window_ms
     fid = None
-    if corrected or window > 0 or matched is None:
+    if corrected or window > 0 or placed is not None:
         from .clean import fixation_average
         from .summary import fixation_of_sample
 

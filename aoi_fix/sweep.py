@@ -269,13 +269,6 @@ def _describe(values: Mapping) -> str:
 
 # --------------------------------------------------------------------------- one setting
 
-def _placement(session):
-    """Trial and frame index of every sample (AOI codes left empty)."""
-    from .pipeline import match_session
-
-    return match_session(session, rows=np.zeros(len(session.samples), dtype=bool))
-
-
 def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.DataFrame,
                      fid: np.ndarray, window_ms: float, store: dict):
     """AOI codes of the fixation samples at window-averaged positions, reusing known ones.
@@ -372,14 +365,15 @@ def _evaluate(setting: Setting, session, placement, cache: dict) -> dict:
     """Detection, matching and aggregation for one setting (mirrors ``convert_session``)."""
     from .clean import fill_gaps
     from .detect import detect_filled
-    from .pipeline import _full_interpolation, load_session, match_session, time_weights
+    from .pipeline import (_full_interpolation, load_session, match_session, place_samples,
+                           time_weights)
     from .summary import aoi_summary, fixation_of_sample, fixation_parts
 
     study = setting.study
     if setting.reload:
         p = session.paths
         session = load_session(p["samples"], study, p["trials"], p["aois"], p.get("checks"))
-        placement = _placement(session)
+        placement = place_samples(session)
         cache = {}
     else:
         session = dataclasses.replace(session, study=study)
@@ -684,7 +678,7 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
     """
     from . import __version__
     from .output import RESEARCH_NOTICE, AtomicOutputs, sha256_soon, table_suffix
-    from .pipeline import _inputs_with_sha256, load_session
+    from .pipeline import _inputs_with_sha256, load_session, place_samples
 
     if fmt not in ("csv", "parquet"):
         raise UsageError(f"--format: found {fmt!r}, expected csv or parquet")
@@ -711,7 +705,7 @@ def sweep(samples, *, study, trials, aois, checks=None, grid: Mapping[str, Seque
     if not isinstance(study, Study):
         inputs = {"study": Path(study), **inputs}
     input_sha256 = sha256_soon(inputs)  # on a thread while the settings run
-    placement = _placement(session)
+    placement = place_samples(session)
     n_jobs = min(jobs, len(settings))
     log.info("sweep: %d settings, %d worker(s)", len(settings), n_jobs)
     if n_jobs == 1:

@@ -481,3 +481,28 @@ def test_stimulus_check_names_the_aoi_row():
     assert str(e.value) == (f"{p}: row 3, column 'stimulus': found 'speaker', which no trial in "
                             "trials.csv shows; expected one of 'clip'")
     stimulus_check(pd.DataFrame({"stimulus": ["clip", "speaker", "clip"]}), aois, "t.csv", p)
+
+
+def test_grids_are_built_by_prepare_tracks_on_any_thread_only(monkeypatch):
+    # convert prepares the AOIs on a side thread while detection runs, so
+    # prepare_tracks must build the cell grid on whatever thread calls it;
+    # match_points running on a worker thread must never build it (the
+    # workers share the prepared polygons)
+    from concurrent.futures import ThreadPoolExecutor
+
+    from aoi_fix import aois as aois_mod
+    from aoi_fix.aois import prepare_tracks
+
+    monkeypatch.setattr(aois_mod, "_GRID_MIN_POINTS_PER_POLYGON", 0)
+    df = pd.DataFrame({"stimulus": ["s"] * 3, "frame": [0, 1, 2], "aoi": ["m"] * 3,
+                       "geometry": [shapely.box(f, 0, f + 10, 10) for f in range(3)]})
+    x, y, f = np.array([5.0, 5.0, 50.0]), np.array([5.0, 5.0, 5.0]), np.array([0, 2, 1])
+    with ThreadPoolExecutor(1) as pool:
+        worker = AoiTable(df)
+        got = pool.submit(match_points, worker, "s", f, x, y).result()
+        assert worker._track("s", "m").grid(0.0, build=False) is None
+        side = AoiTable(df)
+        pool.submit(prepare_tracks, side, "s", n_points=10).result()
+        assert side._track("s", "m").grid(0.0, build=False) is not None
+    assert got.tolist() == [0, 0, -1]
+    np.testing.assert_array_equal(match_points(side, "s", f, x, y), got)

@@ -250,6 +250,27 @@ class AtomicOutputs:
             raise OutputError(f"{final}: cannot write ({e.strerror})") from None
         return Path(final)
 
+    def tables(self, items) -> list[Path]:
+        """Write several ``(df, final, fmt)`` tables, formatted side by side.
+
+        The temporary files are made in order first; the formatting
+        (Arrow and numpy, mostly without the GIL) runs on a few threads.
+        The first failing table in ``items`` order is the error reported.
+        """
+        from ._chunks import map_items
+
+        jobs = [(df, self._tmp_for(Path(final)), fmt, Path(final)) for df, final, fmt in items]
+
+        def write(job) -> Path:
+            df, tmp, fmt, final = job
+            try:
+                _write(df, tmp, fmt)
+            except OSError as e:
+                raise OutputError(f"{final}: cannot write ({e.strerror})") from None
+            return final
+
+        return map_items(write, jobs)
+
     def json(self, obj: Any, final: str | Path) -> Path:
         tmp = self._tmp_for(Path(final))
         tmp.write_text(json_text(obj))

@@ -398,18 +398,18 @@ def _aoi_labels(names_by_trial: list[tuple[str, ...]], trial_row: np.ndarray,
     return flat[where]
 
 
-def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
-                tables: dict) -> dict:
+def _sample_accounting(session: Session, matched: Matched, filled: pd.DataFrame,
+                       fid: np.ndarray) -> dict:
+    """The manifest's ``samples`` and ``trials`` sections (whole-sample counts)."""
+    from .summary import per_trial_sums
+
     t = session.samples["t_ms"].to_numpy(float)
     valid = session.samples["valid"].to_numpy(bool)
     fill = filled["filled"].to_numpy(bool)
     lost = ~valid & ~fill
     in_tr = matched.trial_idx >= 0
-    in_fix = tables["_fid"] >= 0
-    parts = tables["_parts"]
+    in_fix = fid >= 0
     n_tr = len(session.trials)
-    from .summary import per_trial_sums
-
     n_all, n_valid, n_fill, n_lost, n_fix = (
         a.astype(int) for a in per_trial_sums(matched.trial_idx, n_tr, None, valid, fill,
                                               lost, in_fix))
@@ -428,13 +428,24 @@ def _accounting(session: Session, matched: Matched, filled: pd.DataFrame,
             "in_fixations_outside_trials": int((in_fix & ~in_tr).sum()),
             "rule": "total = valid + gap_filled + lost = inside_trials + outside_trials",
         },
+        "trials": per_trial,
+    }
+
+
+def _accounting(counted: dict, tables: dict) -> dict:
+    """Every sample and fixation accounted for: ``counted`` from
+    :func:`_sample_accounting`, fixation parts from :func:`summarise`."""
+    parts = tables["_parts"]
+    fid = tables["_fid"]
+    return {
+        "samples": counted["samples"],
         "fixations": {
-            "detected": int(tables["_fid"].max() + 1) if in_fix.any() else 0,
+            "detected": int(fid.max() + 1) if counted["samples"]["in_fixations"] else 0,
             "parts_written": int(len(parts)),
             "parts_outside_trials": int((parts["trial_row"] < 0).sum()),
             "parts_clipped_at_trial_boundary": int(parts["clipped"].sum()),
         },
-        "trials": per_trial,
+        "trials": counted["trials"],
     }
 
 
@@ -500,7 +511,14 @@ def convert_session(session: Session, *, matched: Matched | None = None,
         fixations["x_px"], fixations["y_px"] = correct_positions(
             fixations["x_px"].to_numpy(float), fixations["y_px"].to_numpy(float), mid, model,
             study.display)
-    tables = summarise(session, matched, fixations, filled, fid=fid)
+    if fid is None:
+        from .summary import fixation_of_sample
+        fid = fixation_of_sample(len(session.samples), fixations)
+    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-count") as side:
+        # the sample accounting needs no summary: counted meanwhile
+        counted = side.submit(_sample_accounting, session, matched, filled, fid)
+        tables = summarise(session, matched, fixations, filled, fid=fid)
+        counted = counted.result()
     from .quality import trial_drift
     drift = trial_drift(session.trials, check_table, display=study.display,
                         max_offset_deg=study.quality.max_offset_deg)
@@ -519,7 +537,7 @@ def convert_session(session: Session, *, matched: Matched | None = None,
             "applied": corrected,
             "reason": ("[quality] correct_offset = true and usable checks" if corrected else
                        "off" if not study.quality.correct_offset else "no usable checks")},
-        **_accounting(session, matched, filled, tables),
+        **_accounting(counted, tables),
     }
     tables["manifest"] = manifest
     return tables
@@ -551,10 +569,10 @@ def write_outputs(tables: dict, out_dir: str | Path, fmt: str = "csv", *,
         raise OutputError(f"{out_dir}: expected an output folder, found a file")
     written = []
     with AtomicOutputs() as w:
-        for name in OUTPUT_TABLES + ("check_quality", "session_summary", "exclusions"):
-            if name in tables:
-                written.append(w.table(tables[name], out_dir / f"{name}{table_suffix(fmt)}",
-                                       fmt))
+        written += w.tables([(tables[name], out_dir / f"{name}{table_suffix(fmt)}", fmt)
+                             for name in OUTPUT_TABLES + ("check_quality", "session_summary",
+                                                          "exclusions")
+                             if name in tables])
         written.append(w.json(tables["manifest"], out_dir / "manifest.json"))
         if plots and session is not None and len(session.trials):
             from . import plots as qc

@@ -9,7 +9,14 @@ of ``convert``'s wall time (system time 0.3-1.2 s of 1.8-2.3 s at 4M samples).
 
 :func:`keep_freed_memory` asks glibc to serve large blocks from its heap and
 not to hand freed heap memory back to the operating system, so later columns
-reuse pages that are already mapped.  The peak memory (the high-water mark)
+reuse pages that are already mapped.  It also keeps every thread on that one
+heap (one arena): the block workers and side threads (``convert`` places
+samples and counts them beside detection and summaries) would otherwise each
+get an arena of their own, whose freed blocks the other threads cannot reuse;
+at 4M samples that raised ``convert``'s peak by 20-75 MB (one arena: 525-540
+MB, as before the side threads; ``benchmarks/run.py``'s measure), at no cost
+in time that we could measure (the arena lock is taken once per block-sized
+allocation, not per sample).  The peak memory (the high-water mark)
 stays the same or lower; the process keeps that much until it exits, which is
 right for a short-lived command.  A library user keeps control of their own
 process: :mod:`aoi_fix` does not call this on import; ``aoi-fix`` does at
@@ -26,6 +33,7 @@ import sys
 # mallopt parameters (glibc <malloc.h>)
 _M_TRIM_THRESHOLD = -1
 _M_MMAP_THRESHOLD = -3
+_M_ARENA_MAX = -8
 
 #: Blocks up to this size come from the heap instead of their own mmap.
 MMAP_THRESHOLD_BYTES = 1 << 30
@@ -34,7 +42,7 @@ TRIM_THRESHOLD_BYTES = 1 << 30
 
 
 def keep_freed_memory() -> bool:
-    """Let glibc reuse freed large blocks instead of unmapping them; True if applied.
+    """Let glibc reuse freed large blocks (one heap for all threads); True if applied.
 
     Does nothing (False) off Linux/glibc or when ``AOI_FIX_MALLOC=default``.
     Results never depend on it, only the time spent in page faults.
@@ -52,4 +60,5 @@ def keep_freed_memory() -> bool:
     mallopt.restype = ctypes.c_int
     ok = mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD_BYTES) == 1
     ok &= mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD_BYTES) == 1
+    ok &= mallopt(_M_ARENA_MAX, 1) == 1
     return bool(ok)

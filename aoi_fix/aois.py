@@ -87,10 +87,14 @@ _QUAD_SEGS = 16
 _DENSE_MAX_RATIO = 64
 # Cells per side of the grid that classifies each polygon's bounding box
 # (:func:`_cell_grid`), and how many points a call must test per polygon of an
-# AOI before building that grid pays: it costs about as much as testing a few
-# hundred points with GEOS and saves about half the cost of each later point
-# (measured on the benchmark sessions, ``make bench``).
-_GRID_CELLS = 16
+# AOI before building that grid pays.  Measured on the benchmark sessions
+# (1760 polygons of 2-200 vertices): a 32-cell grid takes about 29 us per
+# polygon to build (16 cells: 14 us) and sends about half as many points to
+# GEOS as 16 cells; each point it settles saves about 0.1 us, so it pays from
+# about 300 points per polygon.  convert builds it beside detection
+# (pipeline.place_samples); 32 cells made the 4M-sample convert 6-10 % faster
+# than 16 and left the 400k one unchanged, 64 cells cost 50 ms more at 400k.
+_GRID_CELLS = 32
 _GRID_MIN_POINTS_PER_POLYGON = 400
 
 
@@ -769,7 +773,7 @@ def match_points(aois: AoiTable, stimulus: str, frame, x_vid, y_vid, *,
     to its frame's polygon through a frame -> polygon table, and one
     ``shapely.intersects_xy`` call over prepared polygons tests all of them.
     When a call has many points per polygon (at least
-    ``_GRID_MIN_POINTS_PER_POLYGON``), a 16 x 16 grid of cells over each
+    ``_GRID_MIN_POINTS_PER_POLYGON``), a 32 x 32 grid of cells over each
     polygon's box, built once, settles the points in cells without an edge by
     a table look-up, and only points in edge cells go to GEOS; the answer is
     the same (tested).  Python loops run over AOIs only, never over points

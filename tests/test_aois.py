@@ -280,7 +280,9 @@ GRID_SHAPES = [
 
 def _probe_points(geom, rng, n=4000):
     """Random points in and around the box, plus vertices, points on edges and
-    points on the lines of a 16-cell grid over the box."""
+    points on the lines of the cell grid over the box."""
+    from aoi_fix.aois import _GRID_CELLS as k
+
     x0, y0, x1, y1 = geom.bounds
     xs = [rng.uniform(x0 - 2, x1 + 2, n)]
     ys = [rng.uniform(y0 - 2, y1 + 2, n)]
@@ -290,10 +292,10 @@ def _probe_points(geom, rng, n=4000):
     t = rng.uniform(0, 1, len(xy) - 1)
     xs.append(xy[:-1, 0] + t * (xy[1:, 0] - xy[:-1, 0]))      # on (or a rounding off) edges
     ys.append(xy[:-1, 1] + t * (xy[1:, 1] - xy[:-1, 1]))
-    gx = x0 + np.arange(17) * ((x1 - x0) / 16)
-    gy = y0 + np.arange(17) * ((y1 - y0) / 16)
-    xs.append(np.repeat(gx, 17))
-    ys.append(np.tile(gy, 17))
+    gx = x0 + np.arange(k + 1) * ((x1 - x0) / k)
+    gy = y0 + np.arange(k + 1) * ((y1 - y0) / k)
+    xs.append(np.repeat(gx, k + 1))
+    ys.append(np.tile(gy, k + 1))
     return np.concatenate(xs), np.concatenate(ys)
 
 
@@ -329,14 +331,14 @@ def test_cell_grid_classes_against_matplotlib():
     # inside (outside) per matplotlib.path, an independent point-in-polygon code
     from matplotlib.path import Path as MplPath
 
-    from aoi_fix.aois import _EDGE, _INSIDE, _OUTSIDE, _cell_grid
+    from aoi_fix.aois import _EDGE, _GRID_CELLS, _INSIDE, _OUTSIDE, _cell_grid
 
     geom = shapely.from_wkt(GRID_SHAPES[3])                   # the concave star
     g = np.array([geom, None], dtype=object)
     b = shapely.bounds(g)
     classes, sx, sy = _cell_grid(g, *(b[:, k].copy() for k in range(4)))
     assert (classes[1] == _EDGE).all()                        # the None slot
-    k = 16
+    k = _GRID_CELLS
     iy, ix = np.divmod(np.arange(k * k), k)
     x0, y0 = b[0, 0], b[0, 1]
     path = MplPath(np.asarray(geom.exterior.coords))

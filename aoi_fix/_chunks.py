@@ -24,7 +24,7 @@ below 1e-9 px; prefix sums over a whole 4-million-sample column lose more).
 from __future__ import annotations
 
 import os
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Callable, Sequence, TypeVar
 
 import numpy as np
@@ -90,6 +90,45 @@ def map_items(func: Callable[[T], R], items: Sequence[T]) -> list[R]:
         return [func(x) for x in items]
     with ThreadPoolExecutor(max_workers=k) as ex:
         return list(ex.map(func, items))
+
+
+class side_thread:
+    """A context with one side thread for work that overlaps the caller's.
+
+    ``submit(fn, *args, **kwargs)`` returns a future.  With :func:`threads`
+    == 1 (``AOI_FIX_THREADS=1``, the workers of ``sweep -j``/``batch -j``)
+    the work runs at once in the caller's thread instead, its result or
+    error kept in the future, so the caller sees the same thing in the same
+    place either way.  Leaving the context waits for the side work.
+
+    >>> with side_thread() as side:
+    ...     f = side.submit(sum, [1, 2, 3])
+    >>> f.result()
+    6
+    """
+
+    def __init__(self, name: str = "aoi_fix-side") -> None:
+        self._name = name
+        self._pool: ThreadPoolExecutor | None = None
+
+    def __enter__(self) -> "side_thread":
+        if threads() > 1:
+            self._pool = ThreadPoolExecutor(1, thread_name_prefix=self._name)
+        return self
+
+    def submit(self, fn: Callable[..., R], *args, **kwargs) -> "Future[R]":
+        if self._pool is not None:
+            return self._pool.submit(fn, *args, **kwargs)
+        done: Future = Future()
+        try:
+            done.set_result(fn(*args, **kwargs))
+        except BaseException as e:  # kept for .result(), as a thread would
+            done.set_exception(e)
+        return done
+
+    def __exit__(self, *exc) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
 
 
 def split(idx: np.ndarray, size: int = BLOCK) -> list[np.ndarray]:

@@ -122,14 +122,14 @@ def load_session(samples_path, study, trials_path, aois_path, checks_path=None, 
     from .aois import read_aois, stimulus_check
     from .trials import read_trials
 
-    from concurrent.futures import ThreadPoolExecutor
+    from ._chunks import side_thread
 
     if not isinstance(study, Study):
         study = _load_study_for(study, samples_path, overrides)
     # The trial and AOI tables are read on a side thread while the samples are
     # parsed (the parse runs in C without the GIL and has idle moments); their
     # errors are still reported after any error of the samples file.
-    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-side") as side:
+    with side_thread("aoi_fix-read") as side:
         trials_soon = side.submit(read_trials, trials_path, study=study)
         aois_soon = side.submit(read_aois, aois_path, stimuli=study.stimuli)
         samples = read_samples(samples_path, study.samples, study.display)
@@ -458,14 +458,13 @@ def convert_session(session: Session, *, matched: Matched | None = None,
 
     Returns a dict of the output tables plus ``manifest`` (a JSON-able dict).
     """
-    from concurrent.futures import ThreadPoolExecutor
-
     from . import __version__
+    from ._chunks import side_thread
     from .clean import fill_gaps
     from .detect import detect_filled
 
     study = session.study
-    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-place") as side:
+    with side_thread("aoi_fix-place") as side:
         # placement and AOI preparation do not depend on detection: a side
         # thread does them meanwhile (detection leaves a core idle at times)
         placed = side.submit(place_samples, session) if matched is None else None
@@ -514,7 +513,7 @@ def convert_session(session: Session, *, matched: Matched | None = None,
     if fid is None:
         from .summary import fixation_of_sample
         fid = fixation_of_sample(len(session.samples), fixations)
-    with ThreadPoolExecutor(1, thread_name_prefix="aoi_fix-count") as side:
+    with side_thread("aoi_fix-count") as side:
         # the sample accounting needs no summary: counted meanwhile
         counted = side.submit(_sample_accounting, session, matched, filled, fid)
         tables = summarise(session, matched, fixations, filled, fid=fid)

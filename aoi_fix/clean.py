@@ -223,7 +223,9 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
         np.cumsum(ok, out=cn[1:])
         cnt = cn[hi] - cn[lo]
         good = cnt > 0
-        at, lo, hi, cnt = out_at[good], lo[good], hi[good], cnt[good]
+        at = out_at
+        if not good.all():  # a window without a finite sample (not after gap filling)
+            at, lo, hi, cnt = out_at[good], lo[good], hi[good], cnt[good]
         c = np.zeros(top - base + 1)
         for v, out in ((xs, x), (ys, y)):  # two coordinates
             np.cumsum(np.where(ok, v, 0.0), out=c[1:])

@@ -111,8 +111,9 @@ def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarra
     ``np.add.reduceat`` over groups of runs spanning about one block of
     samples (on a few threads), so no full-length temporary is made and each
     run's sum is taken over its own samples only: a run's mean does not depend
-    on which other runs are summed with it.  Other runs fall back to prefix
-    sums.
+    on which other runs are summed with it.  Runs covering under a quarter of
+    their span are gathered first and summed the same way.  Overlapping runs
+    fall back to prefix sums.
 
     >>> x = np.array([1., 2, np.nan, 4, 5, 6])
     >>> m, c = _run_means(np.array([0, 3, 5]), np.array([3, 5, 5]), x, x)
@@ -132,6 +133,24 @@ def _run_means(starts: np.ndarray, ends: np.ndarray, x: np.ndarray, y: np.ndarra
     st, en = starts[nonempty], ends[nonempty]
     if len(st) > 1 and not bool(np.all(st[1:] >= en[:-1])):
         return _run_means_prefix(starts, ends, x, y, valid)
+    lengths = en - st
+    if int(lengths.sum()) * 4 < int(en[-1] - st[0]):
+        # sparse runs (e.g. the few a merge changed): gather their samples,
+        # the same sums over the same values in the same order
+        at = np.cumsum(lengths) - lengths
+        idx = np.repeat(st - at, lengths)
+        idx += np.arange(idx.size)
+        xs, ys = x.take(idx), y.take(idx)
+        use = np.isfinite(xs)
+        use &= np.isfinite(ys)
+        if valid is not None:
+            use &= valid.take(idx)
+        c = np.add.reduceat(use, at, dtype=np.int64)
+        cnt[nonempty] = c
+        with np.errstate(invalid="ignore", divide="ignore"):
+            for j, v in enumerate((xs, ys)):  # two coordinates
+                out[nonempty, j] = np.add.reduceat(np.where(use, v, 0.0), at) / c
+        return out, cnt
     # groups of consecutive runs, each starting about BLOCK samples after the last
     marks = np.arange(int(st[0]), int(en[-1]), BLOCK)
     cut = np.unique(np.searchsorted(st, marks, side="left"))

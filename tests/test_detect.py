@@ -691,3 +691,30 @@ def test_merge_reusing_detector_means_equals_recomputing(method):
                              interval_ms=1000 / 300)
     assert len(want) < len(raw)  # some runs were merged
     pd.testing.assert_frame_equal(got, want, check_exact=True)
+
+
+@pytest.mark.parametrize("block", [64, 1 << 17])
+def test_run_means_sparse_runs_equal_the_same_runs_among_many(monkeypatch, block):
+    # a few runs far apart are gathered before summing; each run's mean must be
+    # bit for bit what it is when summed in place among all runs (the merge in
+    # detect_filled relies on a run's mean not depending on the others)
+    from aoi_fix import _chunks
+    from aoi_fix.detect import _run_means
+
+    monkeypatch.setattr(_chunks, "BLOCK", block)
+    rng = np.random.default_rng(11)
+    n = 20000
+    x = rng.normal(300, 50, n)
+    y = rng.normal(200, 30, n)
+    x[rng.random(n) < 0.05] = np.nan
+    valid = rng.random(n) < 0.9
+    cuts = np.sort(rng.choice(np.arange(n + 1), size=1200, replace=False))
+    starts, ends = cuts[0::2], cuts[1::2]
+    few = np.arange(0, len(starts), 37)
+    assert (ends[few] - starts[few]).sum() * 4 < ends[few][-1] - starts[few][0]  # sparse
+    assert (ends - starts).sum() * 4 >= ends[-1] - starts[0]                     # dense
+    for v in (None, valid):
+        dense, dcnt = _run_means(starts, ends, x, y, v)
+        sparse, scnt = _run_means(starts[few], ends[few], x, y, v)
+        np.testing.assert_array_equal(scnt, dcnt[few])
+        np.testing.assert_array_equal(sparse, dense[few])

@@ -595,6 +595,19 @@ def test_short_dropout_is_bridged(method):
     assert fix.loc[0, "onset_ms"] == 0.0 and fix.loc[0, "offset_ms"] == 600.0
 
 
+def _runs_over_gaze_with_holes(seed, n, n_cuts, *, lost_x, lost_y, valid):
+    """Invented gaze positions (px) with NaN holes per axis, a validity mask, and
+    ``n_cuts // 2`` runs [start, end) in time order at random places."""
+    rng = np.random.default_rng(seed)
+    x = rng.normal(300, 50, n)
+    y = rng.normal(200, 30, n)
+    x[rng.random(n) < lost_x] = np.nan
+    y[rng.random(n) < lost_y] = np.nan
+    ok = rng.random(n) < valid
+    cuts = np.sort(rng.choice(np.arange(n + 1), size=n_cuts, replace=False))
+    return x, y, ok, cuts[0::2], cuts[1::2]
+
+
 @pytest.mark.parametrize("block", [3, 64, 1 << 17])
 def test_run_means_by_groups_equal_prefix_sums(monkeypatch, block):
     # reference: numpy nanmean over each run (general-purpose library), and the
@@ -603,15 +616,9 @@ def test_run_means_by_groups_equal_prefix_sums(monkeypatch, block):
     from aoi_fix.detect import _run_means, _run_means_prefix
 
     monkeypatch.setattr(_chunks, "BLOCK", block)
-    rng = np.random.default_rng(7)
     n = 500
-    x = rng.normal(300, 50, n)
-    y = rng.normal(200, 30, n)
-    x[rng.random(n) < 0.1] = np.nan
-    y[rng.random(n) < 0.05] = np.nan
-    valid = rng.random(n) < 0.8
-    cuts = np.sort(rng.choice(np.arange(n + 1), size=80, replace=False))
-    starts, ends = cuts[0::2], cuts[1::2]
+    x, y, valid, starts, ends = _runs_over_gaze_with_holes(7, n, 80, lost_x=0.1, lost_y=0.05,
+                                                           valid=0.8)
     ends[3] = starts[3]  # an empty run
     ends[-1] = n  # a run to the very end
     for v in (None, valid):
@@ -702,14 +709,8 @@ def test_run_means_sparse_runs_equal_the_same_runs_among_many(monkeypatch, block
     from aoi_fix.detect import _run_means
 
     monkeypatch.setattr(_chunks, "BLOCK", block)
-    rng = np.random.default_rng(11)
-    n = 20000
-    x = rng.normal(300, 50, n)
-    y = rng.normal(200, 30, n)
-    x[rng.random(n) < 0.05] = np.nan
-    valid = rng.random(n) < 0.9
-    cuts = np.sort(rng.choice(np.arange(n + 1), size=1200, replace=False))
-    starts, ends = cuts[0::2], cuts[1::2]
+    x, y, valid, starts, ends = _runs_over_gaze_with_holes(11, 20000, 1200, lost_x=0.05,
+                                                           lost_y=0.0, valid=0.9)
     few = np.arange(0, len(starts), 37)
     assert (ends[few] - starts[few]).sum() * 4 < ends[few][-1] - starts[few][0]  # sparse
     assert (ends - starts).sum() * 4 >= ends[-1] - starts[0]                     # dense

@@ -99,7 +99,8 @@ class side_thread:
     == 1 (``AOI_FIX_THREADS=1``, the workers of ``sweep -j``/``batch -j``)
     the work runs at once in the caller's thread instead, its result or
     error kept in the future, so the caller sees the same thing in the same
-    place either way.  Leaving the context waits for the side work.
+    place either way.  Leaving the context waits for the side work (work not
+    yet started is dropped when the context is left by an error).
 
     >>> with side_thread() as side:
     ...     f = side.submit(sum, [1, 2, 3])
@@ -122,13 +123,13 @@ class side_thread:
         done: Future = Future()
         try:
             done.set_result(fn(*args, **kwargs))
-        except BaseException as e:  # kept for .result(), as a thread would
+        except Exception as e:  # kept for .result(), as a thread would (not Ctrl-C)
             done.set_exception(e)
         return done
 
-    def __exit__(self, *exc) -> None:
-        if self._pool is not None:
-            self._pool.shutdown(wait=True)
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if self._pool is not None:  # on an error, work not yet started is dropped
+            self._pool.shutdown(wait=True, cancel_futures=exc_type is not None)
 
 
 def split(idx: np.ndarray, size: int = BLOCK) -> list[np.ndarray]:

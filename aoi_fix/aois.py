@@ -56,7 +56,6 @@ from __future__ import annotations
 import json
 import math
 import threading
-import warnings
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
 
@@ -91,7 +90,8 @@ _DENSE_MAX_RATIO = 64
 # (1760 polygons of 2-200 vertices): a 32-cell grid takes about 29 us per
 # polygon to build (16 cells: 14 us) and sends about half as many points to
 # GEOS as 16 cells; each point it settles saves about 0.1 us, so it pays from
-# about 300 points per polygon.  convert builds it beside detection
+# about 300 points per polygon (the threshold stays at 400: the count is an upper
+# bound, every sample of the trials showing the video).  convert builds it beside detection
 # (pipeline.place_samples); 32 cells made the 4M-sample convert 6-10 % faster
 # than 16 and left the 400k one unchanged, 64 cells cost 50 ms more at 400k.
 _GRID_CELLS = 32
@@ -153,8 +153,7 @@ class _Track:
         else:
             geoms = np.array(geoms, dtype=object)
         shapely.prepare(geoms)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
+        with np.errstate(all="ignore"):  # per thread (this may run on a side thread)
             b = shapely.bounds(geoms)  # NaN for the None slot
         out = (geoms, *(np.ascontiguousarray(b[:, k]) for k in range(4)))
         self._buffered[margin_px] = out
@@ -524,8 +523,7 @@ def _check_geometries(geoms: np.ndarray, locs: Sequence[str], texts: Sequence[st
     if ok.any():
         geoms[ok] = shapely.force_2d(geoms[ok])
     finite = np.zeros(n, dtype=bool)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
+    with np.errstate(all="ignore"):  # per thread: AOIs are read beside the samples parse
         if ok.any():
             finite[ok] = np.isfinite(shapely.bounds(geoms[ok])).all(axis=1)
     ok &= finite
@@ -583,8 +581,7 @@ def _read_csv(path: Path, stimuli: Mapping, problems=None):
         stims.append(stim)
         texts.append(text)
         locs.append(where(path, row=line, column="wkt"))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
+    with np.errstate(all="ignore"):  # e.g. "overflow in from_wkt" for 1e400; per thread
         geoms = shapely.from_wkt(np.array(texts, dtype=object), on_invalid="ignore")
     geoms, kinds = _kf.check_present(_check_geometries, geoms, locs, texts, kinds, problems)
     location = [f"row {line}" for line, _ in rows]

@@ -253,9 +253,12 @@ class AtomicOutputs:
     def tables(self, items) -> list[Path]:
         """Write several ``(df, final, fmt)`` tables, formatted side by side.
 
-        The temporary files are made in order first; the formatting
-        (Arrow and numpy, mostly without the GIL) runs on a few threads.
-        The first failing table in ``items`` order is the error reported.
+        The temporary files are made in order first (a path that cannot take
+        a file is reported then, before any table is written); the
+        formatting (Arrow and numpy, mostly without the GIL) runs on a few
+        threads, and of the tables that then fail to write, the first in
+        ``items`` order is the error reported.  ``csv_text`` may use threads
+        of its own for a large table inside these.
         """
         from ._chunks import map_items
 

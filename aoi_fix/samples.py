@@ -24,7 +24,6 @@ import csv
 import gzip
 import io
 import logging
-import warnings
 from pathlib import Path
 
 import numpy as np
@@ -292,6 +291,22 @@ def _valid_from(values: pd.Series, cols: SampleColumns, path: Path, name: str,
     return is_text_true | (np.nan_to_num(numv, nan=0.0) != 0)
 
 
+def _eye_mean(stack: np.ndarray) -> np.ndarray:
+    """Mean over the eyes (rows) ignoring NaN; NaN where no eye has a value.
+
+    The arithmetic of ``np.nanmean(stack, axis=0)``, without its warning for
+    all-NaN columns (``warnings.catch_warnings`` is not thread-safe, and the
+    AOI table may be read on another thread meanwhile).
+
+    >>> _eye_mean(np.array([[1.0, np.nan, np.nan], [3.0, 2.0, np.nan]])).tolist()
+    [2.0, 2.0, nan]
+    """
+    lost = np.isnan(stack)
+    count = (~lost).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(lost, 0.0, stack).sum(axis=0) / count
+
+
 def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
                  source: str = "samples", line_of=None, owned: bool = False) -> pd.DataFrame:
     """Turn a raw table (columns named as in ``[samples]``) into the tidy frame.
@@ -401,10 +416,7 @@ def tidy_samples(raw: pd.DataFrame, cols: SampleColumns, display: Display, *,
                 eyes[e] = eye(xn, getattr(cols, f"y_{e}"), getattr(cols, f"valid_{e}"))
         stack_x = np.vstack([v[0] for v in eyes.values()])
         stack_y = np.vstack([v[1] for v in eyes.values()])
-        with np.errstate(invalid="ignore"), warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
-            x = np.nanmean(stack_x, axis=0)
-            y = np.nanmean(stack_y, axis=0)
+        x, y = _eye_mean(stack_x), _eye_mean(stack_y)
         valid = np.isfinite(x) & np.isfinite(y)
         out.update(x_px=x, y_px=y, valid=valid)
         for e, (ex, ey, ev) in eyes.items():

@@ -172,10 +172,13 @@ def test_failed_run_writes_nothing_bad_aoi(small, tmp_path):
     assert not out_dir.exists() or list(out_dir.iterdir()) == []
 
 
-def test_error_order_when_several_inputs_are_bad(small, tmp_path):
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_error_order_when_several_inputs_are_bad(small, tmp_path, monkeypatch, threads):
     # trials and AOIs are read on a side thread during the samples parse; the
     # error reported must still be the first in reading order: samples, then
-    # trials, then AOIs (one message per run, the one a user fixes first)
+    # trials, then AOIs (one message per run, the one a user fixes first);
+    # with one thread the side work runs inline and must report the same
+    monkeypatch.setenv("AOI_FIX_THREADS", threads)
     bad_samples = tmp_path / "samples.csv"
     bad_samples.write_text("no,such,columns\n1,2,3\n")
     bad_trials = tmp_path / "trials.csv"

@@ -390,3 +390,24 @@ def test_median_step_is_numpys_median_of_the_steps(steps, sample, block):
     finally:
         S._STEP_SAMPLE, S._STEP_BLOCK = old
     assert got == float(np.median(np.diff(t)))
+
+
+def test_eye_mean_is_numpys_nanmean():
+    # reference: numpy.nanmean over the eyes (general-purpose library), bit for
+    # bit, with all-NaN columns giving NaN (and no warning)
+    import warnings
+
+    from aoi_fix.samples import _eye_mean
+
+    rng = np.random.default_rng(4)
+    for shape in [(2, 5000), (1, 300)]:
+        a = rng.normal(500, 100, shape)
+        a[rng.random(shape) < 0.3] = np.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            want = np.nanmean(a, axis=0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            got = _eye_mean(a)
+        np.testing.assert_array_equal(got, want)
+        assert np.isnan(got).any()

@@ -155,6 +155,83 @@ def window_rows(i: np.ndarray, f: np.ndarray, start_row: np.ndarray, end_row: np
     return lo, hi
 
 
+def _window_means(x_in: np.ndarray, y_in: np.ndarray, fid: np.ndarray, st: np.ndarray,
+                  en: np.ndarray, h: int, a: int, i: np.ndarray):
+    """Window means of the fixation rows ``i`` (increasing) of the block starting at ``a``.
+
+    Prefix sums start at the block's own first window row, ``max(0, a - h)``,
+    so a sample's mean does not depend on which other rows are asked for (it
+    does on ``a``: callers use the blocks of :func:`aoi_fix._chunks.blocks`).
+    Returns ``(good, mx, my)``: the means of rows ``i[good]`` (``good`` None
+    when every window has a finite sample, as after gap filling).
+    """
+    lo, hi = window_rows(i, fid[i], st, en, h)
+    # every window lies in base..top-1: prefix sums over that stretch only
+    base, top = max(0, a - h), int(hi.max())
+    lo -= base
+    hi -= base
+    xs, ys = x_in[base:top], y_in[base:top]
+    ok = np.isfinite(xs)
+    ok &= np.isfinite(ys)
+    cn = np.zeros(top - base + 1, dtype=np.int64)
+    np.cumsum(ok, out=cn[1:])
+    cnt = cn[hi] - cn[lo]
+    good = cnt > 0
+    if good.all():
+        good = None
+    else:  # a window without a finite sample (not after gap filling)
+        lo, hi, cnt = lo[good], hi[good], cnt[good]
+    c = np.zeros(top - base + 1)
+    out = []
+    for v in (xs, ys):  # two coordinates
+        np.cumsum(np.where(ok, v, 0.0), out=c[1:])
+        m = c[hi]
+        m -= c[lo]
+        m /= cnt
+        out.append(m)
+    return good, out[0], out[1]
+
+
+def fixation_average_blocks(filled: pd.DataFrame, fixations: pd.DataFrame, *,
+                            window_ms: float, interval_ms: float, fid: np.ndarray):
+    """:func:`fixation_average` a block at a time, for matching without whole columns.
+
+    Returns a function ``(a, b) -> (x, y)``: rows ``a..b-1`` of
+    ``fixation_average(filled, fixations, ...)`` as new arrays, the same
+    numbers bit for bit when the blocks are those of
+    :func:`aoi_fix._chunks.map_blocks` (``a`` a multiple of ``BLOCK``).
+    ``convert`` hands it to :func:`aoi_fix.pipeline.match_session`, so the
+    averaged positions are made block by block where they are tested and
+    never as two whole columns.
+
+    >>> f = pd.DataFrame({"x_px": [0., 2, 4, 9], "y_px": [0., 0, 0, 0]})
+    >>> fx = pd.DataFrame({"start_row": [0], "end_row": [3]})
+    >>> get = fixation_average_blocks(f, fx, window_ms=20, interval_ms=10,
+    ...                               fid=np.array([0, 0, 0, -1]))
+    >>> get(0, 4)[0].tolist()
+    [1.0, 2.0, 3.0, 9.0]
+    """
+    x_in = filled["x_px"].to_numpy(dtype=float)
+    y_in = filled["y_px"].to_numpy(dtype=float)
+    st = fixations["start_row"].to_numpy(np.int64)
+    en = fixations["end_row"].to_numpy(np.int64)
+    h = window_half_width(window_ms, interval_ms)
+    averaging = len(fixations) > 0 and window_ms > 0
+
+    def positions(a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        x, y = x_in[a:b].copy(), y_in[a:b].copy()
+        i = np.flatnonzero(fid[a:b] >= 0) if averaging else ()
+        if len(i):
+            i += a
+            good, mx, my = _window_means(x_in, y_in, fid, st, en, h, a, i)
+            at = i - a if good is None else (i - a)[good]
+            x[at] = mx
+            y[at] = my
+        return x, y
+
+    return positions
+
+
 def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms: float,
                      interval_ms: float, fid: np.ndarray | None = None,
                      rows: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -206,33 +283,11 @@ def fixation_average(filled: pd.DataFrame, fixations: pd.DataFrame, *, window_ms
     h = window_half_width(window_ms, interval_ms)
 
     def means(a: int, b: int, i: np.ndarray, out_at) -> None:
-        """Window means of fixation rows ``i`` of block ``a..b-1``, written to ``out_at``.
-
-        Prefix sums start at the block's own first window row, so a sample's
-        mean does not depend on which other rows are asked for.
-        """
-        lo, hi = window_rows(i, fid[i], st, en, h)
-        # every window lies in base..top-1: prefix sums over that stretch only
-        base, top = max(0, a - h), int(hi.max())
-        lo -= base
-        hi -= base
-        xs, ys = x_in[base:top], y_in[base:top]
-        ok = np.isfinite(xs)
-        ok &= np.isfinite(ys)
-        cn = np.zeros(top - base + 1, dtype=np.int64)
-        np.cumsum(ok, out=cn[1:])
-        cnt = cn[hi] - cn[lo]
-        good = cnt > 0
-        at = out_at
-        if not good.all():  # a window without a finite sample (not after gap filling)
-            at, lo, hi, cnt = out_at[good], lo[good], hi[good], cnt[good]
-        c = np.zeros(top - base + 1)
-        for v, out in ((xs, x), (ys, y)):  # two coordinates
-            np.cumsum(np.where(ok, v, 0.0), out=c[1:])
-            m = c[hi]
-            m -= c[lo]
-            m /= cnt
-            out[at] = m
+        """Window means of fixation rows ``i`` of block ``a..b-1``, written to ``out_at``."""
+        good, mx, my = _window_means(x_in, y_in, fid, st, en, h, a, i)
+        at = out_at if good is None else out_at[good]
+        x[at] = mx
+        y[at] = my
 
     if rows is None:
         def block(a: int, b: int) -> None:  # rows a..b-1; reads the input, writes x, y there

@@ -192,7 +192,7 @@ def _full_interpolation(samples: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
 
 
 def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
-                  base: Matched | None = None) -> Matched:
+                  base: Matched | None = None, positions=None) -> Matched:
     """Trial, video frame and AOI code of every sample.
 
     Samples are placed and hit-tested in blocks (a few threads, see
@@ -212,6 +212,10 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         Only these samples are tested (e.g. fixation samples).
     base : Matched, optional
         Reuse its trial and frame index (they do not depend on positions).
+    positions : callable, optional
+        ``(a, b) -> (x_px, y_px)`` for sample rows ``a..b-1``, instead of
+        ``x_px``/``y_px`` (e.g. :func:`aoi_fix.clean.fixation_average_blocks`:
+        positions made block by block where they are tested).
     """
     from . import geometry
     from ._chunks import map_blocks
@@ -223,7 +227,7 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
     study, trials = session.study, session.trials
     t = session.samples["t_ms"].to_numpy(float)
     testing = rows is None or bool(rows.any())  # else placement only (sweeps)
-    if x_px is None and testing:
+    if x_px is None and positions is None and testing:
         x_px, y_px = _full_interpolation(session.samples)
     increasing = len(t) < 2 or bool(np.all(t[1:] > t[:-1]))  # a recording's times
     if base is not None:
@@ -272,13 +276,17 @@ def match_session(session: Session, *, x_px=None, y_px=None, rows=None,
         has = trial_idx[a:b] >= 0
         if rows is not None:
             has &= rows[a:b]
-        has &= np.isfinite(x_px[a:b])
-        has &= np.isfinite(y_px[a:b])
+        if not has.any():
+            return
+        xa, ya = positions(a, b) if positions is not None else (x_px[a:b], y_px[a:b])
+        has &= np.isfinite(xa)
+        has &= np.isfinite(ya)
         cand = np.flatnonzero(has)
         if len(cand) == 0:
             return
+        x_c, y_c = xa[cand], ya[cand]
         cand += a
-        x_c, y_c, tr_c = x_px[cand], y_px[cand], trial_idx[cand]
+        tr_c = trial_idx[cand]
         onv = on_video_at(x_c, y_c, tr_c, rect)
         code[cand[~onv]] = CODE_OFF_VIDEO
         cand, tr_c = cand[onv], tr_c[onv]
@@ -491,19 +499,29 @@ def convert_session(session: Session, *, matched: Matched | None = None,
 
         t = session.samples["t_ms"].to_numpy(float)
         fid = fixation_of_sample(len(t), fixations)
-        if window > 0:
-            xm, ym = fixation_average(filled, fixations, window_ms=window,
-                                      interval_ms=session.interval_ms, fid=fid)
+        if window > 0 and not corrected:
+            # averaged positions made block by block where they are tested
+            # (no two whole columns of them): the same numbers as below
+            from .clean import fixation_average_blocks
+            at = fixation_average_blocks(filled, fixations, window_ms=window,
+                                         interval_ms=session.interval_ms, fid=fid)
+            matched = match_session(session, positions=at, rows=fid >= 0, base=matched)
+            del at
+            filled = filled[["filled"]]
         else:
-            xm, ym = _full_interpolation(session.samples)
-        if corrected:
-            from .quality import correct_positions
-            xm, ym = correct_positions(xm, ym, t, model, study.display)
-        # the gap-filled positions are used up: keep only the flags (accounting),
-        # so that matching does not add to the peak memory
-        filled = filled[["filled"]]
-        matched = match_session(session, x_px=xm, y_px=ym, rows=fid >= 0, base=matched)
-        del xm, ym
+            if window > 0:
+                xm, ym = fixation_average(filled, fixations, window_ms=window,
+                                          interval_ms=session.interval_ms, fid=fid)
+            else:
+                xm, ym = _full_interpolation(session.samples)
+            if corrected:
+                from .quality import correct_positions
+                xm, ym = correct_positions(xm, ym, t, model, study.display)
+            # the gap-filled positions are used up: keep only the flags
+            # (accounting), so that matching does not add to the peak memory
+            filled = filled[["filled"]]
+            matched = match_session(session, x_px=xm, y_px=ym, rows=fid >= 0, base=matched)
+            del xm, ym
     if corrected:
         fixations = fixations.copy()
         mid = (fixations["onset_ms"].to_numpy(float) + fixations["offset_ms"].to_numpy(float)) / 2

@@ -231,3 +231,28 @@ def test_fixation_average_at_rows_is_the_whole_result_at_those_rows(monkeypatch,
     np.testing.assert_array_equal(got_x, whole_x[rows])
     np.testing.assert_array_equal(got_y, whole_y[rows])
     assert np.isfinite(got_x).sum() > 100
+
+
+@pytest.mark.parametrize("block", [1, 7, 64, 1 << 17])
+def test_fixation_average_by_blocks_is_the_whole_result(monkeypatch, block):
+    # convert makes the averaged positions block by block where they are tested:
+    # over the blocks of map_blocks they must be bit for bit the whole result,
+    # windows without a finite sample included (they keep the input position)
+    from aoi_fix import _chunks
+    from aoi_fix.clean import fixation_average, fixation_average_blocks
+    from aoi_fix.summary import fixation_of_sample
+
+    rng = np.random.default_rng(13)
+    n = 700
+    f = pd.DataFrame({"x_px": rng.normal(500, 40, n), "y_px": rng.normal(300, 40, n)})
+    f.loc[rng.random(n) < 0.08, ["x_px", "y_px"]] = np.nan
+    f.loc[100:140, ["x_px", "y_px"]] = np.nan  # windows with no finite sample
+    fx = pd.DataFrame({"start_row": [3, 50, 51, 300, 690], "end_row": [45, 51, 280, 650, 700]})
+    fid = fixation_of_sample(n, fx)
+    monkeypatch.setattr(_chunks, "BLOCK", block)
+    whole_x, whole_y = fixation_average(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)
+    at = fixation_average_blocks(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)
+    parts = _chunks.map_blocks(at, n)
+    np.testing.assert_array_equal(np.concatenate([p[0] for p in parts]), whole_x)
+    np.testing.assert_array_equal(np.concatenate([p[1] for p in parts]), whole_y)
+    assert (np.concatenate([p[0] for p in parts]) != f["x_px"].to_numpy()).sum() > 300

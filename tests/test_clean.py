@@ -210,20 +210,26 @@ def test_fixation_average_equals_the_window_mean_by_hand(monkeypatch, block):
     np.testing.assert_allclose(got_y, want_y, rtol=1e-12, atol=1e-12)
 
 
+def _five_fixations_over_gaze(seed, n=700):
+    """Invented gaze (px) with 8 % lost samples and five fixations, with their fid."""
+    from aoi_fix.summary import fixation_of_sample
+
+    rng = np.random.default_rng(seed)
+    f = pd.DataFrame({"x_px": rng.normal(500, 40, n), "y_px": rng.normal(300, 40, n)})
+    f.loc[rng.random(n) < 0.08, ["x_px", "y_px"]] = np.nan
+    fx = pd.DataFrame({"start_row": [3, 50, 51, 300, 690], "end_row": [45, 51, 280, 650, 700]})
+    return rng, f, fx, fixation_of_sample(n, fx)
+
+
 @pytest.mark.parametrize("block", [1, 7, 64, 1 << 17])
 def test_fixation_average_at_rows_is_the_whole_result_at_those_rows(monkeypatch, block):
     # Sweeps re-average only the samples whose window changed: those numbers must
     # be bit for bit the ones of the whole computation (same block arithmetic).
     from aoi_fix import _chunks
     from aoi_fix.clean import fixation_average
-    from aoi_fix.summary import fixation_of_sample
 
-    rng = np.random.default_rng(12)
-    n = 700
-    f = pd.DataFrame({"x_px": rng.normal(500, 40, n), "y_px": rng.normal(300, 40, n)})
-    f.loc[rng.random(n) < 0.08, ["x_px", "y_px"]] = np.nan
-    fx = pd.DataFrame({"start_row": [3, 50, 51, 300, 690], "end_row": [45, 51, 280, 650, 700]})
-    fid = fixation_of_sample(n, fx)
+    rng, f, fx, fid = _five_fixations_over_gaze(12)
+    n = len(f)
     monkeypatch.setattr(_chunks, "BLOCK", block)
     whole_x, whole_y = fixation_average(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)
     rows = np.sort(rng.choice(n, 150, replace=False))
@@ -240,15 +246,10 @@ def test_fixation_average_by_blocks_is_the_whole_result(monkeypatch, block):
     # windows without a finite sample included (they keep the input position)
     from aoi_fix import _chunks
     from aoi_fix.clean import fixation_average, fixation_average_blocks
-    from aoi_fix.summary import fixation_of_sample
 
-    rng = np.random.default_rng(13)
-    n = 700
-    f = pd.DataFrame({"x_px": rng.normal(500, 40, n), "y_px": rng.normal(300, 40, n)})
-    f.loc[rng.random(n) < 0.08, ["x_px", "y_px"]] = np.nan
+    _, f, fx, fid = _five_fixations_over_gaze(13)
+    n = len(f)
     f.loc[100:140, ["x_px", "y_px"]] = np.nan  # windows with no finite sample
-    fx = pd.DataFrame({"start_row": [3, 50, 51, 300, 690], "end_row": [45, 51, 280, 650, 700]})
-    fid = fixation_of_sample(n, fx)
     monkeypatch.setattr(_chunks, "BLOCK", block)
     whole_x, whole_y = fixation_average(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)
     at = fixation_average_blocks(f, fx, window_ms=40.0, interval_ms=4.0, fid=fid)

@@ -283,7 +283,7 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     rest are averaged and hit-tested on a session cut down to them (hit
     testing is per point).  Other samples get "not in trial", as in ``convert``.
     """
-    from .clean import fixation_average, window_half_width, window_rows
+    from .clean import fixation_average, fixation_average_blocks, window_half_width, window_rows
     from .pipeline import Matched, match_session
     from .summary import CODE_NOT_IN_TRIAL
 
@@ -295,10 +295,9 @@ def _match_fixations(session, placement, filled: pd.DataFrame, fixations: pd.Dat
     fin = fid >= 0
     if "code" not in store:
         # nothing known yet: every fixation sample is matched, by convert's own path
-        xm, ym = fixation_average(filled, fixations, window_ms=window_ms,
-                                  interval_ms=session.interval_ms, fid=fid)
-        first = match_session(session, x_px=xm, y_px=ym, rows=fin, base=placement)
-        del xm, ym
+        at = fixation_average_blocks(filled, fixations, window_ms=window_ms,
+                                     interval_ms=session.interval_ms, fid=fid)
+        first = match_session(session, positions=at, rows=fin, base=placement)
         lo, hi = window_rows(np.arange(n, dtype=rows_t), np.maximum(fid, 0), st, en, h)
         lo[~fin] = -1
         hi[~fin] = -1

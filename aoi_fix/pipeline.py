@@ -119,10 +119,9 @@ class Matched:
 def load_session(samples_path, study, trials_path, aois_path, checks_path=None, *,
                  overrides=()) -> Session:
     """Read and cross-check all inputs of one session (no detection yet)."""
+    from ._chunks import side_thread
     from .aois import read_aois, stimulus_check
     from .trials import read_trials
-
-    from ._chunks import side_thread
 
     if not isinstance(study, Study):
         study = _load_study_for(study, samples_path, overrides)
